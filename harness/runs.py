@@ -1,0 +1,151 @@
+"""Run folders: ids, paths that cannot escape the output folder, atomic files, status.
+
+One run is one config and one seed, in `<output>/<task>/<run-id>/`. Every file is written to
+a temporary name and renamed, so a reader never sees half a file; `status.json` says whether
+the run is running, finished or failed, and readers refuse anything but finished runs.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+from harness.config import Config, config_to_dict
+from harness.errors import HarnessError
+
+__all__ = [
+    "RUN_STATES",
+    "atomic_write_bytes",
+    "atomic_write_json",
+    "atomic_write_text",
+    "environment_info",
+    "read_json",
+    "read_status",
+    "require_finished",
+    "run_folder",
+    "run_id",
+    "write_status",
+]
+
+RUN_STATES = ("running", "finished", "failed", "interrupted")
+_PACKAGES = ("torch", "transformers", "accelerate", "datasets", "peft", "tokenizers", "safetensors",
+             "scikit-learn", "numpy", "scipy", "harness")
+
+
+def atomic_write_bytes(path: Path, data: bytes) -> None:
+    """Write `data` to `path` through a temporary file in the same folder, then rename."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def atomic_write_json(path: Path, obj: Any) -> None:
+    atomic_write_text(path, json.dumps(obj, indent=2, ensure_ascii=False, sort_keys=False) + "\n")
+
+
+def read_json(path: Path) -> Any:
+    """Read a JSON file, with a message naming it when it is missing or broken."""
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise HarnessError(f"{path} is missing") from None
+    except json.JSONDecodeError as exc:
+        raise HarnessError(f"{path} is not valid JSON (line {exc.lineno}): half-written or edited by hand?") from None
+
+
+def run_id(cfg: Config) -> str:
+    """A deterministic id: readable parts plus a hash of the whole resolved config."""
+    data = config_to_dict(cfg)
+    data.pop("sweep", None)
+    data.pop("output", None)
+    digest = hashlib.sha256(json.dumps(data, sort_keys=True).encode("utf-8")).hexdigest()[:10]
+    model = cfg.model.checkpoint.rstrip("/").replace("\\", "/").split("/")[-1].split(":")[-1]
+    model = "".join(ch if ch.isalnum() or ch in "-_." else "-" for ch in model)[:32].strip(".") or "model"
+    return f"{model}-{cfg.method.kind}-s{cfg.train.seed}-{digest}"
+
+
+def run_folder(cfg: Config) -> Path:
+    """`<output>/<task>/<run-id>`, refusing any path that would leave the output folder."""
+    root = Path(cfg.output).resolve()
+    folder = (root / cfg.task.name / run_id(cfg)).resolve()
+    if root not in folder.parents:
+        raise HarnessError(f"task.name {cfg.task.name!r} would put the run outside the output folder {root}")
+    return folder
+
+
+def write_status(folder: Path, state: str, **info: Any) -> None:
+    """Record the run's state (running/finished/failed/interrupted) with a timestamp."""
+    if state not in RUN_STATES:
+        raise AssertionError(f"unknown run state {state}")  # internal invariant
+    previous = read_status(folder) if (folder / "status.json").exists() else {}
+    record = {**previous, **info, "state": state, "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
+    if state == "running" and "started" not in record:
+        record["started"] = record["updated"]
+    if state != "failed":
+        record.pop("error", None)
+    atomic_write_json(folder / "status.json", record)
+
+
+def read_status(folder: Path) -> dict[str, Any]:
+    """The run's status record; a folder without one is not a run folder."""
+    path = folder / "status.json"
+    if not path.exists():
+        raise HarnessError(f"{folder} is not a run folder (no status.json)")
+    status = read_json(path)
+    if not isinstance(status, dict) or status.get("state") not in RUN_STATES:
+        raise HarnessError(f"{path} has no valid 'state'; the folder may be damaged")
+    return status
+
+
+def require_finished(folder: Path, *, need: tuple[str, ...] = ("metrics.json", "predictions.jsonl")) -> dict[str, Any]:
+    """Refuse a run that did not finish or is missing files, with a message naming it."""
+    status = read_status(folder)
+    if status["state"] != "finished":
+        extra = f": {status['error']}" if status.get("error") else ""
+        raise HarnessError(f"run {folder} is {status['state']}, not finished{extra}")
+    for name in need:
+        if not (folder / name).exists():
+            raise HarnessError(f"run {folder} says finished but has no {name}; it is incomplete")
+    return status
+
+
+def environment_info() -> dict[str, Any]:
+    """Package versions, threads and platform: what `replay` compares."""
+    from importlib import metadata
+
+    import torch
+
+    versions = {}
+    for name in _PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = None
+    return {
+        "python": sys.version.split()[0],
+        "platform": platform.platform(),
+        "machine": platform.machine(),
+        "processor": platform.processor(),
+        "cpu_count": os.cpu_count(),
+        "torch_threads": torch.get_num_threads(),
+        "packages": versions,
+    }

@@ -30,10 +30,13 @@ def cmd_audit(args: argparse.Namespace) -> int:
 
 
 def _token_counter(cfg):  # type: ignore[no-untyped-def]
-    """Token counts with the config's tokenizer, or None when it cannot be loaded."""
-    from harness.backbones import load_tokenizer
+    """Token counts with the config's tokenizer (the checkpoint's weights are not loaded)."""
+    from transformers import AutoTokenizer
 
-    tokenizer = load_tokenizer(cfg.model)
+    from harness.backbones import resolve_source
+
+    source, gguf = resolve_source(cfg.model.checkpoint)
+    tokenizer = AutoTokenizer.from_pretrained(source, gguf_file=gguf, trust_remote_code=cfg.model.trust_remote_code)
 
     def count(texts):  # type: ignore[no-untyped-def]
         if texts and isinstance(texts[0], tuple):

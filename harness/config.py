@@ -1,9 +1,9 @@
 """Typed, frozen run configuration, built by `load_config` and nowhere else.
 
 A config file is YAML with the sections `task`, `model`, `method`, `train`, `eval`, `sweep`
-and `output`. Every field below carries its default and allowed values; the schema is the
-dataclasses themselves, so a field added here is validated, overridable with `--set` and
-saved with every run without further wiring.
+and `output`, whose fields are declared in `harness.schema`. This module reads the YAML
+(keeping every key's line), checks types and values, applies `--set` overrides and writes the
+resolved config back out.
 """
 
 from __future__ import annotations
@@ -13,13 +13,23 @@ import difflib
 import re
 import types
 import typing
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, Union, get_args, get_origin
 
 import yaml
 
 from harness.errors import HarnessError
+from harness.schema import (
+    Config,
+    EvalConfig,
+    LoraConfig,
+    MethodConfig,
+    ModelConfig,
+    SweepConfig,
+    TaskConfig,
+    TrainConfig,
+)
+from harness.yamlio import collect_lines, read_yaml
 
 __all__ = [
     "Config",
@@ -33,222 +43,14 @@ __all__ = [
     "config_from_dict",
     "config_to_dict",
     "dump_config",
+    "field_docs",
+    "get_dotted",
     "load_config",
     "parse_override",
+    "set_dotted",
 ]
 
 _NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,79}$")
-
-
-def _doc(text: str, default: Any = dataclasses.MISSING, **kw: Any) -> Any:
-    """A dataclass field with a one-line description kept in its metadata."""
-    if default is dataclasses.MISSING and "default_factory" not in kw:
-        return field(metadata={"doc": text}, **kw)
-    if "default_factory" in kw:
-        return field(metadata={"doc": text}, **kw)
-    return field(default=default, metadata={"doc": text}, **kw)
-
-
-@dataclass(frozen=True)
-class TaskConfig:
-    """Where the labelled text is and how to read it."""
-
-    name: str = _doc("task name, used in run folder paths; letters, digits, '_', '-', '.'")
-    train: str = _doc("training split: a CSV/TSV/JSONL/Parquet path or 'asset:NAME'")
-    dev: str | None = _doc("dev split path; null = carve it from train (dev_fraction)", None)
-    test: str | None = _doc("test split path; null = carve it from train (test_fraction)", None)
-    text: str | tuple[str, str] = _doc("text column, or a list of two columns for pairs", "text")
-    label: str = _doc("label column", "label")
-    id: str | None = _doc("row id column; null = '<split>-<row number>'", None)
-    labels: tuple[str, ...] | None = _doc("declared label set in order; null = sorted labels of train", None)
-    format: Literal["auto", "csv", "tsv", "jsonl", "parquet"] = _doc("file format; auto = by extension", "auto")
-    dev_fraction: float = _doc("share of train carved out as dev when dev is null (0-0.5)", 0.15)
-    test_fraction: float = _doc("share of train carved out as test when test is null (0-0.5)", 0.15)
-    split_seed: int = _doc("seed of the stratified carve-out split", 0)
-    dedupe: bool = _doc("drop repeated texts (keep first) before splitting", False)
-    train_size: int | None = _doc("seeded stratified subsample of train (rows); null = all", None)
-    max_rows: int | None = _doc("cap every split to its first N rows after splitting (smoke runs)", None)
-
-
-@dataclass(frozen=True)
-class ModelConfig:
-    """Which pretrained checkpoint to start from."""
-
-    checkpoint: str = _doc("local folder, .gguf file, 'asset:NAME', 'toy:KIND' or a hub id when online")
-    family: Literal["auto", "encoder", "decoder", "encoder-decoder"] = _doc(
-        "architecture family; auto = detect from the checkpoint's config", "auto"
-    )
-    layers: int | None = _doc("keep only the first N transformer layers (fast tests); null = all", None)
-    trust_remote_code: bool = _doc("run model code shipped with the checkpoint (off: unsafe)", False)
-    allow_pickle: bool = _doc("accept pickle-based weight files (.bin/.pt); off: safetensors/GGUF only", False)
-
-
-@dataclass(frozen=True)
-class LoraConfig:
-    """Low-rank adapters (through peft); the classification head stays fully trainable."""
-
-    r: int = _doc("adapter rank (>= 1)", 8)
-    alpha: float = _doc("scaling numerator; the update is scaled by alpha / r", 16.0)
-    dropout: float = _doc("dropout on the adapter input (0-1)", 0.05)
-    targets: tuple[str, ...] | None = _doc("module names to adapt; null = the attention projections", None)
-
-
-@dataclass(frozen=True)
-class MethodConfig:
-    """How the checkpoint becomes a classifier: head, next_token or prompt."""
-
-    kind: Literal["head", "next_token", "prompt"] = _doc("head | next_token | prompt", "head")
-    pooling: Literal["auto", "first", "last", "mean"] = _doc(
-        "head only: auto = first for encoders, last for decoders", "auto"
-    )
-    use_pooler: bool = _doc("head + first pooling: pass through the checkpoint's trained pooler layer", False)
-    dropout: float | None = _doc("head dropout (0-1); null = the checkpoint's hidden dropout, else 0.1", None)
-    class_weights: str | dict[str, float] | None = _doc("null | 'balanced' | {label: weight}", None)
-    label_smoothing: float = _doc("cross-entropy label smoothing (0-1)", 0.0)
-    freeze: Literal["none", "backbone", "embeddings"] = _doc(
-        "none | backbone (linear probe) | embeddings", "none"
-    )
-    lora: LoraConfig | None = _doc("low-rank adapters instead of full fine-tuning; null = off", None)
-    template: str = _doc(
-        "next_token/prompt: prompt with {text} (or {text_a}/{text_b}) and optional {demos}",
-        "{demos}Message: {text}\nCategory:",
-    )
-    demo_template: str = _doc(
-        "prompt: how each demonstration is written into {demos}", "Message: {text}\nCategory: {label}\n\n"
-    )
-    label_words: dict[str, str | tuple[str, ...]] | None = _doc(
-        "next_token/prompt: label -> word or list of words; null = the label names", None
-    )
-    multi_word: Literal["first", "average"] = _doc(
-        "several words for one label: score the first only, or average their probabilities", "average"
-    )
-    space_prefix: Literal["auto", "always", "never"] = _doc(
-        "prefix label words with a space; auto = when the tokenizer is byte-level BPE", "auto"
-    )
-    score: Literal["sum", "mean"] = _doc("label score: summed or per-token mean log-probability", "sum")
-    end_token: bool = _doc("next_token: append the end-of-text token after the label words", False)
-    shots: int = _doc("prompt: number of demonstrations drawn from train (0 = zero-shot)", 0)
-    shots_per_class: bool = _doc("prompt: draw `shots` demonstrations from every class", False)
-    calibrate: bool = _doc("prompt: contextual calibration with a content-free input (Zhao et al. 2021)", False)
-
-
-@dataclass(frozen=True)
-class TrainConfig:
-    """Optimisation and batching; ignored by `prompt`."""
-
-    epochs: float = _doc("passes over train (> 0; fractions allowed)", 3.0)
-    max_steps: int | None = _doc("stop after this many optimiser steps; null = epochs decide", None)
-    batch_size: int = _doc("examples per forward pass (>= 1)", 16)
-    grad_accum: int = _doc("forward passes per optimiser step (>= 1)", 1)
-    learning_rate: float = _doc("peak learning rate of the backbone (> 0)", 5.0e-5)
-    head_learning_rate: float | None = _doc("learning rate of the fresh head; null = learning_rate", None)
-    weight_decay: float = _doc("AdamW weight decay; biases and norm weights are exempt", 0.01)
-    schedule: Literal["linear", "cosine", "constant"] = _doc("learning-rate decay after warmup", "linear")
-    warmup: float = _doc("warmup length as a share of all steps (0-1)", 0.06)
-    max_grad_norm: float | None = _doc("gradient clipping norm; null = off", 1.0)
-    max_length: int = _doc("tokens per example after truncation (>= 8)", 128)
-    seed: int = _doc("seed of head init, data order, dropout and demonstrations", 13)
-    batching: Literal["random", "grouped"] = _doc(
-        "random order, or length-grouped batches within shuffled pools (less padding)", "grouped"
-    )
-    pool_batches: int = _doc("grouped batching: batches per shuffled pool sorted by length", 16)
-    eval_every: int = _doc("evaluate on dev every N optimiser steps; 0 = every epoch", 0)
-    patience: int | None = _doc("early stopping after N evaluations without improvement; null = off", None)
-    log_every: int = _doc("write a log.jsonl line every N optimiser steps", 10)
-    threads: int | None = _doc("torch intra-op threads; null = physical cores of this machine", None)
-    bf16: bool = _doc("bf16 autocast on the CPU (measure first: not faster on every CPU)", False)
-    checkpoint_every: int = _doc("save a resumable checkpoint every N steps; 0 = at each evaluation", 0)
-
-
-@dataclass(frozen=True)
-class EvalConfig:
-    """How runs are scored and compared."""
-
-    primary: str = _doc("metric for early stopping, sorting and paired tests", "macro_f1")
-    positive: str | None = _doc("binary tasks: the positive label; null = the second label", None)
-    batch_size: int = _doc("examples per scoring pass (>= 1)", 64)
-    bootstrap: int = _doc("bootstrap resamples for intervals (0 = none)", 1000)
-    ci: float = _doc("confidence level of intervals (0.5-0.999)", 0.95)
-    worst: int = _doc("misclassified examples listed in the report", 10)
-    extra: tuple[str, ...] = _doc("local folders of extra metrics (evaluate library), loaded by path", ())
-
-
-@dataclass(frozen=True)
-class SweepConfig:
-    """A grid of settings expanded into one run per combination."""
-
-    grid: dict[str, tuple[Any, ...]] = _doc("dotted key -> list of values (a 'method' key takes blocks)", default_factory=dict)
-    exclude: tuple[dict[str, Any], ...] = _doc("combinations to skip: each a map of dotted key -> value", ())
-
-
-@dataclass(frozen=True)
-class Config:
-    """One run's complete settings."""
-
-    task: TaskConfig = _doc("the labelled data")
-    model: ModelConfig = _doc("the pretrained checkpoint")
-    method: MethodConfig = _doc("how the checkpoint becomes a classifier", default_factory=MethodConfig)
-    train: TrainConfig = _doc("optimisation", default_factory=TrainConfig)
-    eval: EvalConfig = _doc("scoring", default_factory=EvalConfig)
-    sweep: SweepConfig = _doc("grid of variants (harness sweep)", default_factory=SweepConfig)
-    output: str = _doc("folder that holds runs/<task>/<run-id>/", "runs")
-    source: str = field(default="<dict>", compare=False, metadata={"doc": "internal: where it was read"})
-
-
-# ---------------------------------------------------------------------------------------------
-# YAML with line numbers
-
-
-class _LineLoader(yaml.SafeLoader):
-    """A safe loader that remembers the line of every mapping key."""
-
-
-def _construct_mapping(loader: _LineLoader, node: yaml.MappingNode) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    lines: dict[str, int] = {}
-    for key_node, value_node in node.value:
-        key = loader.construct_object(key_node, deep=True)
-        if not isinstance(key, str):
-            raise HarnessError(f"key {key!r} on line {key_node.start_mark.line + 1} is not a string")
-        if key in out:
-            raise HarnessError(f"key '{key}' appears twice (line {key_node.start_mark.line + 1})")
-        out[key] = loader.construct_object(value_node, deep=True)
-        lines[key] = key_node.start_mark.line + 1
-    return _Located(out, lines)
-
-
-class _Located(dict):  # type: ignore[type-arg]
-    """A dict that knows the source line of each key."""
-
-    def __init__(self, data: dict[str, Any], lines: dict[str, int]) -> None:
-        super().__init__(data)
-        self.lines = lines
-
-
-_LineLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)  # type: ignore[arg-type]
-
-
-def _read_yaml(path: Path) -> dict[str, Any]:
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise HarnessError(f"config file {path} does not exist") from None
-    except UnicodeDecodeError as exc:
-        raise HarnessError(f"config file {path} is not UTF-8 text ({exc.reason} at byte {exc.start})") from None
-    try:
-        data = yaml.load(text, Loader=_LineLoader)  # noqa: S506 - a SafeLoader subclass
-    except yaml.MarkedYAMLError as exc:
-        mark = exc.problem_mark
-        where = f" line {mark.line + 1}" if mark is not None else ""
-        raise HarnessError(f"{path}{where}: not valid YAML: {exc.problem}") from None
-    except HarnessError as exc:
-        raise HarnessError(f"{path}: {exc}") from None
-    if data is None:
-        raise HarnessError(f"config file {path} is empty; it needs at least 'task' and 'model' sections")
-    if not isinstance(data, dict):
-        raise HarnessError(f"config file {path} must be a mapping of sections, got {type(data).__name__}")
-    return data
-
 
 # ---------------------------------------------------------------------------------------------
 # Building typed objects
@@ -264,14 +66,6 @@ class _Where:
     def __call__(self, key: str) -> str:
         line = self.lines.get(key)
         return f"'{key}' in {self.source}" + (f" line {line}" if line else "")
-
-
-def _collect_lines(data: Any, prefix: str, out: dict[str, int]) -> None:
-    if isinstance(data, _Located):
-        for key, value in data.items():
-            dotted = f"{prefix}{key}"
-            out[dotted] = data.lines[key]
-            _collect_lines(value, dotted + ".", out)
 
 
 def _type_name(tp: Any) -> str:
@@ -464,14 +258,14 @@ def _check_sweep(cfg: Config, where: _Where) -> None:
                 hint = str(exc).split("; ", 1)[1] if "; " in str(exc) else ""
                 raise HarnessError(f"{where('sweep.grid.' + key)}: '{key}' is not a config key; {hint}") from None
         for value in values:
-            trial = _set_dotted(base, key, _thaw(value), where("sweep.grid." + key))
+            trial = set_dotted(base, key, _thaw(value), where("sweep.grid." + key))
             try:
                 config_from_dict(trial, source=cfg.source, check_sweep=False)
             except HarnessError as exc:
                 raise HarnessError(f"{where('sweep.grid.' + key)}: value {_thaw(value)!r} is invalid: {exc}") from None
     for i, rule in enumerate(cfg.sweep.exclude):
         for key in rule:
-            _get_dotted(base, key, f"sweep.exclude[{i}] in {cfg.source}")
+            get_dotted(base, key, f"sweep.exclude[{i}] in {cfg.source}")
 
 
 def _thaw(value: Any) -> Any:
@@ -482,7 +276,7 @@ def _thaw(value: Any) -> Any:
     return value
 
 
-def _set_dotted(data: dict[str, Any], key: str, value: Any, where: str) -> dict[str, Any]:
+def set_dotted(data: dict[str, Any], key: str, value: Any, where: str) -> dict[str, Any]:
     """A copy of `data` with the dotted `key` set; the key must name a known section."""
     import copy
 
@@ -500,7 +294,7 @@ def _set_dotted(data: dict[str, Any], key: str, value: Any, where: str) -> dict[
     return out
 
 
-def _get_dotted(data: dict[str, Any], key: str, where: str) -> Any:
+def get_dotted(data: dict[str, Any], key: str, where: str) -> Any:
     node: Any = data
     for part in key.split("."):
         if not isinstance(node, dict) or part not in node:
@@ -515,7 +309,7 @@ def config_from_dict(
     """Build and validate a Config from plain data (as read from YAML)."""
     if lines is None:
         lines = {}
-        _collect_lines(data, "", lines)
+        collect_lines(data, "", lines)
     where = _Where(source, lines)
     cfg = _build(Config, dict(data), "", where)
     cfg = dataclasses.replace(cfg, source=source)
@@ -552,15 +346,15 @@ def parse_override(text: str) -> tuple[str, Any]:
 def load_config(path: str | Path, overrides: typing.Sequence[str] = ()) -> Config:
     """Read a YAML config, apply `--set key=value` overrides and validate everything."""
     path = Path(path)
-    data: dict[str, Any] = _read_yaml(path)
+    data: dict[str, Any] = read_yaml(path)
     lines: dict[str, int] = {}
-    _collect_lines(data, "", lines)
+    collect_lines(data, "", lines)
     plain = _thaw_located(data)
     plain = _fix_yaml_numbers(plain)
     for text in overrides:
         key, value = parse_override(text)
         _check_override_key(key)
-        plain = _set_dotted(plain, key, value, f"--set {key}")
+        plain = set_dotted(plain, key, value, f"--set {key}")
         lines[key] = 0
     lines = {k: v for k, v in lines.items() if v}
     return config_from_dict(plain, source=str(path), lines=lines)
@@ -638,3 +432,6 @@ def field_docs(cls: Any = Config, prefix: str = "") -> list[tuple[str, str, str]
             default = "required"
         rows.append((prefix + f.name, default, f.metadata.get("doc", "")))
     return rows
+
+
+_set_dotted = set_dotted  # older name, kept for callers inside the package

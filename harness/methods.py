@@ -3,6 +3,10 @@
 The loop in `harness.train` knows nothing about heads or label words: it asks the method for
 encoded examples, batches them, calls `loss` on each batch and `predict_proba` on a split.
 A new method is a class with these members, registered in `METHODS` (see DEVELOPERS.md).
+Its constructor takes keywords `cfg` (Config) and `data` (TaskData). Optional members the runner
+uses when present: `tokenizer` and `max_length` plus `cache_params()` (what else changes `encode`'s
+output) for the token cache, and a `load_exported(folder)` static/class method for `harness predict`.
+Names of freshly initialised parameters start with "head." (they get train.head_learning_rate).
 """
 
 from __future__ import annotations
@@ -16,7 +20,7 @@ import torch
 
 from harness.errors import HarnessError
 
-__all__ = ["Encoded", "Method", "METHODS", "register_method", "build_method"]
+__all__ = ["Encoded", "Method", "METHODS", "register_method", "build_method", "load_builtin_methods"]
 
 
 @dataclass(frozen=True)
@@ -35,7 +39,9 @@ class Method(Protocol):
     """What the training loop and the runner need from a method."""
 
     name: str
-    model: torch.nn.Module  # the trainable module (backbone + head, or the LM)
+    @property
+    def model(self) -> torch.nn.Module:
+        """The trainable module (backbone + head, or the LM); read-only here so a subclass type fits."""
     trains: bool  # False for `prompt`: the loop is skipped
 
     def encode(self, texts: Sequence[Any], labels: Sequence[int]) -> list[Encoded]:
@@ -74,12 +80,22 @@ def register_method(name: str) -> Callable[[MethodFactory], MethodFactory]:
     return wrap
 
 
-def build_method(name: str, **kwargs: Any) -> Method:
-    """Instantiate a registered method by name."""
-    # Import for the registration side effect; kept here so importing this module stays light.
-    import harness.heads  # noqa: F401
-    import harness.next_token  # noqa: F401
+_BUILTIN = ("harness.head_method", "harness.next_token", "harness.prompting")
 
+
+def load_builtin_methods() -> dict[str, MethodFactory]:
+    """Import the built-in method modules for their registration side effect; returns METHODS."""
+    import importlib
+
+    # Kept out of module import so that importing this module stays light.
+    for module in _BUILTIN:
+        importlib.import_module(module)
+    return METHODS
+
+
+def build_method(name: str, **kwargs: Any) -> Method:
+    """Instantiate a registered method by name; factories take keywords `cfg` (Config) and `data` (TaskData)."""
+    load_builtin_methods()
     if name not in METHODS:
         raise HarnessError(f"unknown method {name!r}; choose one of {', '.join(sorted(METHODS))}")
     return METHODS[name](**kwargs)

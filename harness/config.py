@@ -239,6 +239,17 @@ def _check_values(cfg: Config, where: _Where) -> None:
         hint = f"did you mean '{close[0]}'? " if close else ""
         raise HarnessError(f"{where('eval.primary')}: unknown metric {ev.primary!r}; {hint}choose one of "
                            + ", ".join(METRICS))
+    if m.kind != "head":
+        from harness.templates import check_text_fields, parse_template
+
+        for key, text, allowed in (("method.template", m.template, ("text", "text_a", "text_b", "demos")),
+                                   ("method.demo_template", m.demo_template, ("text", "text_a", "text_b", "label"))):
+            try:
+                template = parse_template(text, key=key, allowed=allowed)
+                if key == "method.template":
+                    check_text_fields(template, is_pair=isinstance(t.text, tuple))
+            except HarnessError as exc:
+                raise HarnessError(f"{where(key)}: {str(exc).removeprefix(key + ': ')}") from None
     if m.kind == "prompt" and m.lora is not None:
         raise HarnessError(f"{where('method.lora')}: method 'prompt' trains nothing; remove method.lora")
     _check_sweep(cfg, where)

@@ -158,3 +158,19 @@ def test_every_example_config_validates(path: Path, monkeypatch: pytest.MonkeyPa
     monkeypatch.chdir(ROOT)
     cfg = load_config(path)
     assert cfg.task.name and cfg.model.checkpoint
+
+
+@pytest.mark.parametrize("template,words", [
+    ("Message: {text.__class__}", "attribute"),
+    ("Message: {text[0]}", "index"),
+    ("Message: {other}", "{other}"),
+    ("Message: {text!r}", "conversion"),
+    ("Message only", "no {text}"),
+])
+def test_template_errors_at_load_time(tmp_path: Path, template: str, words: str) -> None:
+    body = GOOD.replace("  kind: head", f"  kind: next_token\n  template: {template!r}")
+    with pytest.raises(HarnessError) as err:
+        load_config(write(tmp_path, body))
+    message = str(err.value)
+    assert "'method.template'" in message and "line 12" in message, message
+    assert words.lower() in message.lower(), message

@@ -55,7 +55,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     cfg = load_config(args.config, args.overrides)
     if cfg.sweep.grid:
         raise HarnessError(f"{args.config} has a sweep block; run it with 'harness sweep {args.config}'")
-    execute_run(cfg, resume=args.resume, force=args.force)
+    execute_run(cfg, resume=args.resume, overwrite=args.force)
     return 0
 
 

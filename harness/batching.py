@@ -1,0 +1,65 @@
+"""The order of training examples: plain shuffled batches, or length-grouped batches within shuffled pools.
+
+`grouped` shuffles the examples, cuts them into pools of `pool_batches` batches, sorts each pool by
+length and cuts it into batches, then shuffles the order of all batches. Padding shrinks (a batch
+holds similar lengths) while every batch still mixes examples from across the set. A global length
+sort would not: on data where length tracks the label, whole runs of batches would hold one class
+and a decoder learns to predict that class.
+
+The order depends only on (seed, epoch), never on the global random stream, so a resumed run
+replays exactly the batches an uninterrupted run sees.
+"""
+
+from __future__ import annotations
+
+import math
+import random
+from collections.abc import Iterator, Sequence
+
+__all__ = ["EpochBatches", "epoch_batches"]
+
+
+def epoch_batches(lengths: Sequence[int], batch_size: int, *, mode: str, pool_batches: int, seed: int,
+                  epoch: int) -> list[list[int]]:
+    """Index batches for one epoch; every example appears exactly once."""
+    rng = random.Random(f"{seed}:{epoch}")  # string seeds hash deterministically (sha512), across runs
+    order = list(range(len(lengths)))
+    rng.shuffle(order)
+    if mode == "random":
+        return [order[i:i + batch_size] for i in range(0, len(order), batch_size)]
+    if mode != "grouped":
+        raise ValueError(f"unknown batching mode {mode!r}")  # internal: the config allows only these two
+    pool = batch_size * pool_batches
+    batches: list[list[int]] = []
+    for start in range(0, len(order), pool):
+        # sorted() is stable: equal lengths keep their shuffled order.
+        chunk = sorted(order[start:start + pool], key=lambda i: lengths[i])
+        batches.extend(chunk[i:i + batch_size] for i in range(0, len(chunk), batch_size))
+    rng.shuffle(batches)
+    return batches
+
+
+class EpochBatches:
+    """A batch sampler for DataLoader whose epoch is chosen by the training loop (`use_epoch`).
+
+    Deliberately no `set_epoch`: accelerate calls that with its own counter, which restarts at 0
+    when a run resumes.
+    """
+
+    def __init__(self, lengths: Sequence[int], batch_size: int, *, mode: str, pool_batches: int, seed: int) -> None:
+        self.lengths = list(lengths)
+        self.batch_size = batch_size
+        self.mode = mode
+        self.pool_batches = pool_batches
+        self.seed = seed
+        self.epoch = 0
+
+    def use_epoch(self, epoch: int) -> None:
+        self.epoch = epoch
+
+    def __iter__(self) -> Iterator[list[int]]:
+        return iter(epoch_batches(self.lengths, self.batch_size, mode=self.mode, pool_batches=self.pool_batches,
+                                  seed=self.seed, epoch=self.epoch))
+
+    def __len__(self) -> int:
+        return math.ceil(len(self.lengths) / self.batch_size)

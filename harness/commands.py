@@ -53,7 +53,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from harness.runner import execute_run
 
     cfg = load_config(args.config, args.overrides)
-    if cfg.sweep.grid:
+    if cfg.sweep.grid or cfg.sweep.arms:
         raise HarnessError(f"{args.config} has a sweep block; run it with 'harness sweep {args.config}'")
     execute_run(cfg, resume=args.resume, overwrite=args.force)
     return 0

@@ -274,6 +274,22 @@ def _check_sweep(cfg: Config, where: _Where) -> None:
                 config_from_dict(trial, source=cfg.source, check_sweep=False)
             except HarnessError as exc:
                 raise HarnessError(f"{where('sweep.grid.' + key)}: value {_thaw(value)!r} is invalid: {exc}") from None
+    for i, arm in enumerate(cfg.sweep.arms):
+        trial = base
+        for key, value in arm.items():
+            if key.startswith("sweep") or key == "output":
+                raise HarnessError(f"{where('sweep.arms')}: arm {i + 1}: '{key}' cannot be set by an arm")
+            if key != "method":
+                try:
+                    _check_override_key(key)
+                except HarnessError as exc:
+                    hint = str(exc).split("; ", 1)[1] if "; " in str(exc) else ""
+                    raise HarnessError(f"{where('sweep.arms')}: arm {i + 1}: '{key}' is not a config key; {hint}") from None
+            trial = set_dotted(trial, key, _thaw(value), where("sweep.arms"))
+        try:
+            config_from_dict(trial, source=cfg.source, check_sweep=False)
+        except HarnessError as exc:
+            raise HarnessError(f"{where('sweep.arms')}: arm {i + 1} is invalid: {exc}") from None
     for i, rule in enumerate(cfg.sweep.exclude):
         for key in rule:
             get_dotted(base, key, f"sweep.exclude[{i}] in {cfg.source}")

@@ -161,6 +161,10 @@ class SweepConfig:
     """A grid of settings expanded into one run per combination."""
 
     grid: dict[str, tuple[Any, ...]] = _doc("dotted key -> list of values (a 'method' key takes blocks)", default_factory=dict)
+    arms: tuple[dict[str, Any], ...] = _doc(
+        "settings that travel together (each a map of dotted key -> value), crossed with the grid; () = one arm",
+        (),
+    )
     exclude: tuple[dict[str, Any], ...] = _doc("combinations to skip: each a map of dotted key -> value", ())
 
 

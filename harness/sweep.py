@@ -48,14 +48,19 @@ def _lookup(data: dict[str, Any], key: str) -> Any:
 def _expand(cfg: Config) -> tuple[list[Config], list[int]]:
     """The runs, and how many combinations each exclude rule removed."""
     base = config_to_dict(cfg)
-    base["sweep"] = {"grid": {}, "exclude": []}
+    base["sweep"] = {"grid": {}, "arms": [], "exclude": []}
     keys = list(cfg.sweep.grid)  # file order: dicts keep insertion order
     rules = [{k: _thaw(v) for k, v in rule.items()} for rule in cfg.sweep.exclude]
     hits = [0] * len(rules)
     runs: list[Config] = []
     seen: dict[str, int] = {}
-    for n, combo in enumerate(itertools.product(*(cfg.sweep.grid[k] for k in keys))):
+    arms = [dict(arm) for arm in cfg.sweep.arms] or [{}]
+    # arms outermost (each arm's runs together), then the grid in file order
+    combos = [(arm, combo) for arm in arms for combo in itertools.product(*(cfg.sweep.grid[k] for k in keys))]
+    for n, (arm, combo) in enumerate(combos):
         data = base
+        for key, value in arm.items():
+            data = set_dotted(data, key, _thaw(value), f"sweep.arms in {cfg.source}")
         for key, value in zip(keys, combo, strict=True):
             # a one-part key ('method') replaces the whole block; dotted keys set one field
             data = set_dotted(data, key, _thaw(value), f"sweep.grid.{key} in {cfg.source}")

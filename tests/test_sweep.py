@@ -102,6 +102,24 @@ def test_method_block_replaces_the_whole_block(tmp_path: Path) -> None:
     assert head.method.template == prompt.method.template
 
 
+def test_arms_carry_settings_together_and_cross_the_grid(tmp_path: Path) -> None:
+    sweep = """\
+arms:
+  - {model.checkpoint: toy:encoder, train.learning_rate: 1.0e-3}
+  - {model.checkpoint: toy:decoder, method.kind: next_token, train.epochs: 2}
+grid:
+  train.seed: [1, 2]
+"""
+    runs = expand_sweep(load_config(_write(tmp_path, sweep)))
+    got = [(r.model.checkpoint, r.method.kind, r.train.learning_rate, r.train.epochs, r.train.seed) for r in runs]
+    assert got == [("toy:encoder", "head", 1.0e-3, 1.0, 1), ("toy:encoder", "head", 1.0e-3, 1.0, 2),
+                   ("toy:decoder", "next_token", 1.0e-3, 2.0, 1), ("toy:decoder", "next_token", 1.0e-3, 2.0, 2)]
+    with pytest.raises(HarnessError, match=r"sweep.arms.*arm 2: 'train.epoch' is not a config key"):
+        load_config(_write(tmp_path, "arms:\n  - {train.seed: 3}\n  - {train.epoch: 2}\n"))
+    with pytest.raises(HarnessError, match=r"arm 1 is invalid: .*train.batch_size"):
+        load_config(_write(tmp_path, "arms:\n  - {train.batch_size: 0}\n"))
+
+
 @pytest.mark.parametrize(("sweep", "words"), [
     ("grid:\n  train.lerning_rate: [1.0e-3]\n", ["sweep.grid.train.lerning_rate", "did you mean 'train.learning_rate'"]),
     ("grid:\n  trian.epochs: [1]\n", ["sweep.grid.trian.epochs", "is not a config key", "did you mean 'train'"]),

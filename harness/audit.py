@@ -16,13 +16,26 @@ import numpy as np
 
 from harness.data import Split, TaskData
 
-__all__ = ["audit_data", "render_audit", "suggest_max_length"]
+__all__ = ["audit_data", "render_audit", "suggest_max_length", "token_counter", "write_audit"]
 
 Tokenize = Callable[[Sequence[Any]], list[int]]  # texts -> token counts
 
 
 def _key(text: Any) -> str:
     return json.dumps(text, ensure_ascii=False) if isinstance(text, tuple) else text.strip().lower()
+
+
+def token_counter(tokenizer: Any) -> Tokenize:
+    """Token counts per text (pairs encoded as pairs) with a checkpoint's tokenizer."""
+
+    def count(texts: Sequence[Any]) -> list[int]:
+        if texts and isinstance(texts[0], tuple):
+            enc = tokenizer([t[0] for t in texts], [t[1] for t in texts], add_special_tokens=True)
+        else:
+            enc = tokenizer(list(texts), add_special_tokens=True)
+        return [len(ids) for ids in enc["input_ids"]]
+
+    return count
 
 
 def suggest_max_length(lengths: Sequence[int], cover: float = 0.99) -> int:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 from pathlib import Path
+from typing import Any
 
 from harness.errors import HarnessError
 
@@ -29,23 +30,16 @@ def cmd_audit(args: argparse.Namespace) -> int:
     return 0
 
 
-def _token_counter(cfg):  # type: ignore[no-untyped-def]
+def _token_counter(cfg: Any) -> Any:
     """Token counts with the config's tokenizer (the checkpoint's weights are not loaded)."""
     from transformers import AutoTokenizer
 
+    from harness.audit import token_counter
     from harness.backbones import resolve_source
 
     source, gguf = resolve_source(cfg.model.checkpoint)
     tokenizer = AutoTokenizer.from_pretrained(source, gguf_file=gguf, trust_remote_code=cfg.model.trust_remote_code)
-
-    def count(texts):  # type: ignore[no-untyped-def]
-        if texts and isinstance(texts[0], tuple):
-            enc = tokenizer([t[0] for t in texts], [t[1] for t in texts], add_special_tokens=True)
-        else:
-            enc = tokenizer(list(texts), add_special_tokens=True)
-        return [len(ids) for ids in enc["input_ids"]]
-
-    return count
+    return token_counter(tokenizer)
 
 
 def cmd_run(args: argparse.Namespace) -> int:

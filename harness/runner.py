@@ -15,6 +15,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import logging
 import shutil
 import sys
 import time
@@ -24,6 +25,7 @@ from typing import Any
 
 import yaml
 
+from harness.audit import audit_data, token_counter
 from harness.config import Config, config_to_dict, dump_config
 from harness.data import Split, TaskData, load_task, read_rows
 from harness.errors import HarnessError
@@ -38,6 +40,8 @@ from harness.runs import (
 )
 
 __all__ = ["encode_split", "execute_run", "load_exported", "peak_rss_mb", "predict"]
+
+logger = logging.getLogger(__name__)
 
 
 def peak_rss_mb() -> float:
@@ -119,8 +123,13 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
         atomic_write_json(folder / "environment.json", {**environment_info(), "torch_threads": threads})
         base = Path(cfg.source).parent if Path(cfg.source).is_file() else None
         data = load_task(cfg.task, seed=cfg.train.seed, base=base)
-        atomic_write_json(folder / "data.json", data.fingerprint())
         method = build_method(cfg.method.kind, cfg=cfg, data=data)
+        tokenizer = getattr(method, "tokenizer", None)
+        audit = audit_data(data, max_length=cfg.train.max_length,
+                           count_tokens=token_counter(tokenizer) if tokenizer is not None else None)
+        atomic_write_json(folder / "data.json", {**data.fingerprint(), "audit": audit})
+        for finding in audit["findings"]:
+            logger.warning("data: %s", finding)
         (train_items, _), (dev_items, _), (test_items, _) = (encode_split(method, s, cfg) for s in data.splits())
         result = None
         if method.trains:
@@ -146,6 +155,12 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
         write_status(folder, "failed", error=f"{type(exc).__name__}: {exc}")
         raise
     write_status(folder, "finished")
+    try:
+        from harness.report import write_run_report
+
+        write_run_report(folder)
+    except Exception as exc:  # the run's results stand; a broken figure must not fail it
+        logger.warning("run %s finished but its report could not be written: %s", folder, exc)
     _summary(log, folder, cfg, metrics, data)
     return folder
 

@@ -302,7 +302,7 @@ def test_encoder_checkpoint_is_refused(toy_paths: dict[str, Path]) -> None:
 
 @pytest.mark.parametrize("template", ["{text.__class__}", "{text[0]}", "{other}", "{text!r}"])
 def test_template_injection_is_a_config_error(toy_paths: dict[str, Path], dec: Backbone, template: str) -> None:
-    with pytest.raises(HarnessError, match=r"method\.template: placeholder .* is not allowed"):
+    with pytest.raises(HarnessError, match=r"method\.template'? in .*: placeholder .* is not allowed"):
         build_method("next_token", cfg=make_cfg(toy_paths["decoder"], template=f"Message: {template}\nCategory:"),
                      data=make_data(["a", "b"]), backbone=dec)
 
@@ -312,7 +312,7 @@ def test_config_errors_name_their_key(toy_paths: dict[str, Path], dec: Backbone)
     cases = [({"label_words": {"lost_item": "lost"}}, r"method\.label_words: label 'refund' has no words"),
              ({"label_words": {"lost_item": "lost", "refund": "money", "praise": "x"}}, r"method\.label_words\.praise"),
              ({"label_words": {"lost_item": "late", "refund": " late"}}, "same tokens"),
-             ({"template": "{demos}Category:"}, r"method\.template: the template has no \{text\}"),
+             ({"template": "{demos}Category:"}, r"method\.template'? in .*: the template has no \{text\}"),
              ({"template": "Read this. " * 30 + "{text}:"}, r"method\.template: the template alone takes"),
              ({"freeze": "backbone"}, r"method\.freeze")]
     for method, pattern in cases:

@@ -166,7 +166,7 @@ def test_prompt_refuses_an_encoder(toy_paths: dict[str, Path]) -> None:
 
 
 def test_demo_template_is_checked(toy_paths: dict[str, Path], dec: Backbone) -> None:
-    with pytest.raises(HarnessError, match=r"method\.demo_template: placeholder \{label\.upper\} is not allowed"):
+    with pytest.raises(HarnessError, match=r"method\.demo_template'? in .*: placeholder \{label\.upper\} is not allowed"):
         build_method("prompt", cfg=make_cfg(toy_paths["decoder"], shots=2, demo_template="{text} {label.upper}\n"),
                      data=make_data(), backbone=dec)
 

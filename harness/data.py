@@ -319,27 +319,27 @@ def load_task(cfg: TaskConfig, *, seed: int = 0, base: Path | None = None) -> Ta
         raise HarnessError(f"{train_path}: train has a single class ({raw['train'][2][0]!r}); a classifier needs two or more")
     if cfg.labels is not None:
         label_names = tuple(cfg.labels)
-        for name, (_, _, labels, lines, path) in raw.items():
+        for _, _, labels, lines, src in raw.values():
             for lab, line in zip(labels, lines, strict=True):
                 if lab not in label_names:
                     raise HarnessError(
-                        f"{path} line {line}: label {lab!r} is not in task.labels ({', '.join(label_names)})"
+                        f"{src} line {line}: label {lab!r} is not in task.labels ({', '.join(label_names)})"
                     )
     else:
         label_names = tuple(sorted(set(raw["train"][2])))
         for name in ("dev", "test"):
             if name in raw:
-                ids, _, labels, lines, path = raw[name]
+                _, _, labels, lines, src = raw[name]
                 for lab, line in zip(labels, lines, strict=True):
                     if lab not in label_names:
                         raise HarnessError(
-                            f"{path} line {line}: label {lab!r} never occurs in train ({train_path}); "
+                            f"{src} line {line}: label {lab!r} never occurs in train ({train_path}); "
                             "a model cannot learn it: add training rows or declare task.labels"
                         )
     index = {lab: k for k, lab in enumerate(label_names)}
     splits: dict[str, Split] = {}
-    for name, (ids, texts, labels, lines, path) in raw.items():
-        splits[name] = Split(name, tuple(ids), tuple(texts), tuple(index[x] for x in labels), path, tuple(lines))
+    for name, (ids, texts, labels, lines, src) in raw.items():
+        splits[name] = Split(name, tuple(ids), tuple(texts), tuple(index[x] for x in labels), src, tuple(lines))
     train = splits["train"]
     if cfg.dedupe:
         seen: set[Any] = set()

@@ -134,7 +134,7 @@ def environment_info() -> dict[str, Any]:
 
     import torch
 
-    versions = {}
+    versions: dict[str, str | None] = {}
     for name in _PACKAGES:
         try:
             versions[name] = metadata.version(name)

@@ -8,7 +8,15 @@ from pathlib import Path
 
 import pytest
 
-from harness.config import Config, config_from_dict, config_to_dict, dump_config, field_docs, load_config, parse_override
+from harness.config import (
+    Config,
+    config_from_dict,
+    config_to_dict,
+    dump_config,
+    field_docs,
+    load_config,
+    parse_override,
+)
 from harness.errors import HarnessError
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
+import json
 import re
 import types
 import typing
@@ -452,9 +453,9 @@ def field_docs(cls: Any = Config, prefix: str = "") -> list[tuple[str, str, str]
             rows.extend(field_docs(sub[0], prefix + f.name + "."))
             continue
         if f.default is not dataclasses.MISSING:
-            default = repr(_thaw(f.default))
+            default = json.dumps(_thaw(f.default))
         elif f.default_factory is not dataclasses.MISSING:
-            default = repr(_thaw(f.default_factory()))
+            default = json.dumps(_thaw(f.default_factory()))
         else:
             default = "required"
         rows.append((prefix + f.name, default, f.metadata.get("doc", "")))

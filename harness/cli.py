@@ -99,6 +99,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     os.environ.setdefault("HF_HUB_OFFLINE", "1")
     os.environ.setdefault("TRANSFORMERS_NO_ADVISORY_WARNINGS", "1")
+    # The library's own bars (e.g. "Writing model shards") would interleave with ours.
+    os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
     try:
         return _dispatch(args)
     except HarnessError as exc:

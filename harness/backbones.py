@@ -73,7 +73,7 @@ def resolve_source(checkpoint: str) -> tuple[Path | str, str | None]:
         path = Path(checkpoint).expanduser()
     if path.is_file():
         if path.suffix.lower() != ".gguf":
-            raise HarnessError(f"model.checkpoint {checkpoint!r} is a file but not a .gguf file; "
+            raise HarnessError(f"model.checkpoint: {checkpoint!r} is a file but not a .gguf file; "
                                "give a checkpoint folder or a .gguf file")
         return path.parent, path.name
     if path.is_dir():
@@ -92,7 +92,7 @@ def _check_weight_files(folder: Path, cfg: ModelConfig) -> None:
         return
     pickles = sorted(n for n in names if n.endswith(_PICKLE_SUFFIXES) and n != "training_args.bin")
     if pickles and not cfg.allow_pickle:
-        raise HarnessError(f"{folder / pickles[0]}: weights are a pickle file (loading it can run code); "
+        raise HarnessError(f"model.checkpoint: {folder / pickles[0]} holds pickle weights (loading them can run code); "
                            "convert them to safetensors or set model.allow_pickle: true if you trust the source")
 
 
@@ -110,8 +110,29 @@ def detect_family(config: Any) -> Family:
 
     if model_type in MODEL_FOR_CAUSAL_LM_MAPPING_NAMES:
         return "decoder"
-    raise HarnessError(f"cannot tell the family of model type {model_type!r} ({architectures or 'no architectures'}); "
-                       "set model.family to encoder, decoder or encoder-decoder")
+    raise HarnessError(f"model.family: cannot tell the family of model type {model_type!r} "
+                       f"({architectures or 'no architectures'}); set model.family to encoder, decoder or encoder-decoder")
+
+
+# The library's auto classes for text: a model type none of them knows (vision, audio) cannot classify text.
+_TEXT_MAPPINGS = ("MODEL_FOR_MASKED_LM_MAPPING_NAMES", "MODEL_FOR_CAUSAL_LM_MAPPING_NAMES",
+                  "MODEL_FOR_SEQ_TO_SEQ_CAUSAL_LM_MAPPING_NAMES", "MODEL_FOR_SEQUENCE_CLASSIFICATION_MAPPING_NAMES",
+                  "MODEL_FOR_TEXT_ENCODING_MAPPING_NAMES")
+
+
+def _check_text_model(config: Any, where: str) -> None:
+    """Refuse a checkpoint whose model type no text auto class of transformers knows (e.g. a vision model)."""
+    from transformers.models.auto import modeling_auto
+
+    text_types: set[str] = set()
+    for name in _TEXT_MAPPINGS:
+        text_types.update(getattr(modeling_auto, name, {}))
+    model_type = getattr(config, "model_type", "")
+    if model_type and model_type not in text_types:
+        architectures = ", ".join(getattr(config, "architectures", None) or []) or "no architectures listed"
+        raise HarnessError(f"{where} is a {model_type!r} model ({architectures}), not a text model: transformers has "
+                           "no masked-LM, causal-LM, seq2seq or sequence-classification class for it; "
+                           "give a text checkpoint")
 
 
 def _model_class(family: Family, for_lm: bool) -> Any:
@@ -119,8 +140,8 @@ def _model_class(family: Family, for_lm: bool) -> Any:
 
     if family == "encoder":
         if for_lm:
-            raise HarnessError("this method scores label words with a language-model output layer, which needs a "
-                               "decoder or encoder-decoder checkpoint; model.checkpoint is an encoder (use method.kind: head)")
+            raise HarnessError("model.checkpoint: an encoder, but this method scores label words with a language-model "
+                               "output layer, which needs a decoder or encoder-decoder checkpoint (use method.kind: head)")
         return tf.AutoModel
     if family == "decoder":
         return tf.AutoModelForCausalLM if for_lm else tf.AutoModel
@@ -155,16 +176,21 @@ def load_backbone(model_cfg: ModelConfig, *, for_lm: bool) -> Backbone:
         common["gguf_file"] = gguf
     if model_cfg.trust_remote_code:
         common["trust_remote_code"] = True
-    where = f"model.checkpoint {model_cfg.checkpoint!r}"
+        # One line, every time: the switch runs code from the checkpoint folder with the user's rights.
+        log.warning("model.trust_remote_code is on: loading %s may run Python code shipped with the checkpoint; "
+                    "keep it off unless you trust where the checkpoint came from", model_cfg.checkpoint)
+    where = f"model.checkpoint: {model_cfg.checkpoint!r}"
     try:
         config = tf.AutoConfig.from_pretrained(str(source), **common)
     except OSError as exc:
         if not isinstance(source, Path) and offline:
-            raise HarnessError(f"{where}: not a local folder or file, and the model hub is off (HF_HUB_OFFLINE); "
+            raise HarnessError(f"{where} is not a local folder or file, and the model hub is off (HF_HUB_OFFLINE); "
                                "give a local checkpoint folder, asset:NAME or toy:KIND") from None
-        raise HarnessError(f"{where}: cannot read its config ({exc})") from None
-    except ValueError as exc:  # e.g. a model type that needs trust_remote_code
-        raise HarnessError(f"{where}: {exc}".splitlines()[0]) from None
+        raise HarnessError(f"{where} has no readable config ({str(exc).splitlines()[0]})") from None
+    except ValueError as exc:  # an unknown model type, or one that needs trust_remote_code
+        raise HarnessError(f"{where} cannot be read: {str(exc).splitlines()[0]}") from None
+    if not model_cfg.trust_remote_code:
+        _check_text_model(config, where)
     family: Family = detect_family(config) if model_cfg.family == "auto" else model_cfg.family
     weights: dict[str, Any] = {"dtype": torch.float32}  # CPU training in fp32; GGUF is dequantised to fp32
     if gguf is None and not model_cfg.allow_pickle:
@@ -174,7 +200,7 @@ def load_backbone(model_cfg: ModelConfig, *, for_lm: bool) -> Backbone:
             tokenizer = tf.AutoTokenizer.from_pretrained(str(source), **common)
             model = _model_class(family, for_lm).from_pretrained(str(source), config=config, **common, **weights)
         except (OSError, ValueError) as exc:
-            raise HarnessError(f"{where}: cannot load it as a {family} ({str(exc).splitlines()[0]})") from None
+            raise HarnessError(f"{where} cannot be loaded as a {family} ({str(exc).splitlines()[0]})") from None
     if model_cfg.layers is not None:
         from harness.assets import cut_model_in_memory
 
@@ -219,8 +245,8 @@ def clamp_max_length(backbone: Backbone, max_length: int) -> int:
     """`train.max_length`, lowered (with a logged warning) to what the checkpoint's positions allow."""
     limit = position_limit(backbone)
     if limit is not None and max_length > limit:
-        log.warning("train.max_length %d exceeds the %d positions of %s; using %d", max_length, limit,
-                    backbone.source, limit)
+        log.warning("train.max_length %d exceeds the %d positions of %s: the model was never trained on longer "
+                    "inputs, so it is cut to %d", max_length, limit, backbone.source, limit)
         backbone.notes.append(f"train.max_length {max_length} clamped to {limit}")
         return limit
     return max_length

@@ -43,12 +43,14 @@ class EpochBatches:
     """A batch sampler for DataLoader whose epoch is chosen by the training loop (`use_epoch`).
 
     Deliberately no `set_epoch`: accelerate calls that with its own counter, which restarts at 0
-    when a run resumes.
+    when a run resumes. Deliberately no `batch_size` attribute either: accelerate, sharding batches
+    over several processes, would take every batch to be that size and silently drop the shorter
+    ones (each pool's last batch); without it, it hands out whole batches of any length.
     """
 
     def __init__(self, lengths: Sequence[int], batch_size: int, *, mode: str, pool_batches: int, seed: int) -> None:
         self.lengths = list(lengths)
-        self.batch_size = batch_size
+        self.size = batch_size
         self.mode = mode
         self.pool_batches = pool_batches
         self.seed = seed
@@ -58,8 +60,8 @@ class EpochBatches:
         self.epoch = epoch
 
     def __iter__(self) -> Iterator[list[int]]:
-        return iter(epoch_batches(self.lengths, self.batch_size, mode=self.mode, pool_batches=self.pool_batches,
+        return iter(epoch_batches(self.lengths, self.size, mode=self.mode, pool_batches=self.pool_batches,
                                   seed=self.seed, epoch=self.epoch))
 
     def __len__(self) -> int:
-        return math.ceil(len(self.lengths) / self.batch_size)
+        return math.ceil(len(self.lengths) / self.size)

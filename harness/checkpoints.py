@@ -4,7 +4,8 @@
 trainable weights, optimizer and scheduler state, the python/numpy/torch random states, the
 data-order position (epoch, batch within the epoch) and the training state (step, best so far,
 evaluations without improvement). `<run>/checkpoints/best.safetensors` holds the trainable weights
-of the best evaluation. Both are written to a temporary name and renamed. Every tensor and value
+of the best evaluation. Both are written to a temporary name and renamed, by the main process only
+when several run together (see harness.distributed). Every tensor and value
 in last.pt loads with `torch.load(weights_only=True)`: no pickled code.
 """
 
@@ -53,12 +54,20 @@ class TrainState:
     window_batches: int = 0
 
 
+def _unwrapped(model: nn.Module) -> nn.Module:
+    """The module inside a DDP wrapper (several processes), so names carry no 'module.' prefix."""
+    from torch.nn.parallel import DistributedDataParallel
+
+    return model.module if isinstance(model, DistributedDataParallel) else model
+
+
 def trainable_state(model: nn.Module) -> dict[str, torch.Tensor]:
     """Parameters that train (the rest is rebuilt from the checkpoint on load), detached copies on the CPU."""
-    return {n: p.detach().cpu().clone() for n, p in model.named_parameters() if p.requires_grad}
+    return {n: p.detach().cpu().clone() for n, p in _unwrapped(model).named_parameters() if p.requires_grad}
 
 
 def _load_trainable(model: nn.Module, state: dict[str, torch.Tensor], path: Path) -> None:
+    model = _unwrapped(model)
     expected = {n for n, p in model.named_parameters() if p.requires_grad}
     if set(state) != expected:
         raise HarnessError(f"{path} does not match this model's trainable parameters; the config changed since "
@@ -97,9 +106,12 @@ class Checkpoints:
         self.best = folder / "best.safetensors"
 
     def save(self, model: nn.Module, optimizer: Any, scheduler: Any, state: TrainState) -> None:
-        """Write last.pt atomically."""
+        """Write last.pt atomically (the main process only: the others hold the same state)."""
+        from harness.distributed import is_main_process
         from harness.runs import atomic_write_bytes
 
+        if not is_main_process():
+            return
         payload = {
             "model": trainable_state(model),
             "optimizer": optimizer.state_dict(),
@@ -126,15 +138,23 @@ class Checkpoints:
         return TrainState(**payload["state"])
 
     def save_best(self, model: nn.Module) -> None:
+        """Write best.safetensors atomically (the main process only)."""
         from safetensors.torch import save
 
+        from harness.distributed import is_main_process
         from harness.runs import atomic_write_bytes
 
+        if not is_main_process():
+            return
         atomic_write_bytes(self.best, save({k: v.contiguous() for k, v in trainable_state(model).items()}))
 
     def load_best(self, model: nn.Module) -> None:
+        """Load best.safetensors into `model` (every process, once the main one has written it)."""
         from safetensors.torch import load_file
 
+        from harness.distributed import wait_for_everyone
+
+        wait_for_everyone()
         if not self.best.exists():
             raise HarnessError(f"{self.best} is missing: the run never evaluated; train for at least one step")
         _load_trainable(model, load_file(str(self.best)), self.best)

@@ -46,6 +46,7 @@ __all__ = [
     "dump_config",
     "field_docs",
     "get_dotted",
+    "key_location",
     "load_config",
     "parse_override",
     "set_dotted",
@@ -66,6 +67,8 @@ class _Where:
 
     def __call__(self, key: str) -> str:
         line = self.lines.get(key)
+        if line == 0:  # the value came from the command line, not from the file
+            return f"'{key}' in --set (config {self.source})"
         return f"'{key}' in {self.source}" + (f" line {line}" if line else "")
 
 
@@ -331,6 +334,34 @@ def get_dotted(data: dict[str, Any], key: str, where: str) -> Any:
     return node
 
 
+def key_location(cfg: Config, key: str) -> str:
+    """"'key' in FILE line N" for a value found wrong after loading (a checkpoint that does not load...).
+
+    The line is the key's line in the config file when the file holds the value the run uses;
+    a value from --set or a sweep is said to be so, since no line of the file shows it.
+    """
+    path = Path(cfg.source)
+    if not path.is_file():
+        return f"'{key}'"
+    try:
+        data = read_yaml(path)
+    except HarnessError:
+        return f"'{key}' in {cfg.source}"
+    lines: dict[str, int] = {}
+    collect_lines(data, "", lines)
+    missing = object()
+    try:
+        in_file = get_dotted(_fix_yaml_numbers(_thaw_located(data)), key, "")
+    except HarnessError:
+        in_file = missing
+    used = get_dotted(config_to_dict(cfg), key, "") if key.split(".")[0] != "sweep" else missing
+    if in_file is not missing and _thaw(in_file) == used and key in lines:
+        return f"'{key}' in {cfg.source} line {lines[key]}"
+    if in_file is missing and key not in lines:
+        return f"'{key}' (its default) in {cfg.source}"
+    return f"'{key}' (set by --set or the sweep) in {cfg.source}"
+
+
 def config_from_dict(
     data: dict[str, Any], *, source: str = "<dict>", lines: dict[str, int] | None = None, check_sweep: bool = True
 ) -> Config:
@@ -383,8 +414,8 @@ def load_config(path: str | Path, overrides: typing.Sequence[str] = ()) -> Confi
         key, value = parse_override(text)
         _check_override_key(key)
         plain = set_dotted(plain, key, value, f"--set {key}")
-        lines[key] = 0
-    lines = {k: v for k, v in lines.items() if v}
+        lines = {k: v for k, v in lines.items() if k != key and not k.startswith(key + ".")}
+        lines[key] = 0  # _Where says "in --set"
     return config_from_dict(plain, source=str(path), lines=lines)
 
 

@@ -152,12 +152,14 @@ def _read_delimited(path: Path, text: str, delimiter: str) -> tuple[list[dict[st
         raise HarnessError(f"{path} line 1: column {dup[0]!r} appears twice in the header")
     rows, lines = [], []
     while True:
+        start = reader.line_num + 1  # a quoted field may run over several lines; name where the row began
         try:
             row = next(reader)
         except StopIteration:
             break
         except csv.Error as exc:
-            raise HarnessError(f"{path} line {reader.line_num}: malformed row ({exc})") from None
+            unclosed = "; a quote opened in it is never closed" if "end of data" in str(exc) else ""
+            raise HarnessError(f"{path} line {start}: malformed row ({exc}){unclosed}") from None
         if not row or all(not c.strip() for c in row):
             continue  # blank line
         if len(row) != len(header):
@@ -187,19 +189,25 @@ def _read_jsonl(path: Path, text: str) -> tuple[list[dict[str, Any]], list[int]]
 
 
 def _read_parquet(path: Path) -> tuple[list[dict[str, Any]], list[int]]:
-    import datasets  # heavy: only for Parquet
+    # pyarrow directly (what datasets reads Parquet with): no cache folder, and no second line of
+    # error logging on stderr for a broken file.
+    import pyarrow.parquet as pq
 
-    datasets.disable_progress_bars()
     try:
-        ds = datasets.Dataset.from_parquet(str(path), keep_in_memory=True)
+        table = pq.read_table(path)
     except Exception as exc:  # pyarrow raises many types for a broken file
-        raise HarnessError(f"{path}: not a readable Parquet file ({type(exc).__name__}: {exc})") from None
-    rows = ds.to_list()
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise HarnessError(f"{path}: not a readable Parquet file ({type(exc).__name__}: {reason})") from None
+    rows = table.to_pylist()
     return rows, list(range(1, len(rows) + 1))
 
 
-def _cell(value: Any) -> str | None:
-    """A cell as text; None for missing values (empty, null, NaN)."""
+def _cell(value: Any, where: str = "", column: str = "") -> str | None:
+    """A cell as text; None for missing values (empty, null, NaN). A list or mapping is an error."""
+    if isinstance(value, (dict, list, tuple)):
+        kind = "a mapping" if isinstance(value, dict) else "a list"
+        raise HarnessError(f"{where}: column {column!r} holds {kind} ({json.dumps(value, default=str)[:40]}), "
+                           "not text; give one string per cell")
     if value is None:
         return None
     if isinstance(value, float) and math.isnan(value):
@@ -220,17 +228,19 @@ def _read_split(name: str, path_text: str, cfg: TaskConfig, base: Path) -> tuple
     for col, k in [*((c, "task.text") for c in text_cols), (cfg.label, "task.label"),
                    *(((cfg.id, "task.id"),) if cfg.id else ())]:
         if col not in columns:
-            raise HarnessError(f"{path}: no column {col!r} (set by {k}); the columns are {', '.join(columns)}")
+            raise HarnessError(f"{path}: no column {col!r} (set by {k}); the columns are {', '.join(map(repr, columns))}"
+                               + _delimiter_hint(columns, path))
     ids, texts, labels = [], [], []
     for i, (row, line) in enumerate(zip(rows, lines, strict=True)):
-        parts = [_cell(row.get(c)) for c in text_cols]
+        where = f"{path} line {line}"
+        parts = [_cell(row.get(c), where, c) for c in text_cols]
         for c, p in zip(text_cols, parts, strict=True):
             if p is None:
-                raise HarnessError(f"{path} line {line}: empty text in column {c!r}; remove the row or fill it in")
-        label = _cell(row.get(cfg.label))
+                raise HarnessError(f"{where}: empty text in column {c!r}; remove the row or fill it in")
+        label = _cell(row.get(cfg.label), where, cfg.label)
         if label is None:
-            raise HarnessError(f"{path} line {line}: missing label in column {cfg.label!r}")
-        row_id = _cell(row.get(cfg.id)) if cfg.id else f"{name}-{i + 1}"
+            raise HarnessError(f"{where}: missing label in column {cfg.label!r}")
+        row_id = _cell(row.get(cfg.id), where, cfg.id) if cfg.id else f"{name}-{i + 1}"
         if row_id is None:
             raise HarnessError(f"{path} line {line}: missing id in column {cfg.id!r}")
         ids.append(row_id)
@@ -240,6 +250,17 @@ def _read_split(name: str, path_text: str, cfg: TaskConfig, base: Path) -> tuple
     if dup:
         raise HarnessError(f"{path}: id {dup[0]!r} appears {Counter(ids)[dup[0]]} times in column {cfg.id!r}; ids must be unique")
     return ids, texts, labels, lines, path
+
+
+def _delimiter_hint(columns: Sequence[str], path: Path) -> str:
+    """A hint when the whole header landed in one column: the file uses another delimiter."""
+    if len(columns) != 1:
+        return ""
+    for delimiter, name in (("\t", "tab"), (";", "semicolon"), ("|", "pipe"), (",", "comma")):
+        if delimiter in columns[0]:
+            fix = "name it .tsv or set task.format: tsv" if delimiter == "\t" else "re-save it as CSV or TSV"
+            return f"; the header looks {name}-separated: {fix}"
+    return ""
 
 
 def stratified_carve(labels: Sequence[int], groups: Sequence[str], fraction: float, seed: int) -> tuple[list[int], list[int]]:

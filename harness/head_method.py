@@ -211,8 +211,13 @@ class HeadMethod:
         """Softmax probabilities (n, num_labels) in the order given, in eval mode, without gradients."""
         if not items:
             return np.zeros((0, len(self.label_names)))
-        batches = (self.collate(items[i:i + batch_size]) for i in range(0, len(items), batch_size))
-        return predict_batches(self.model, batches, self.logits)
+        # Batches of similar lengths pad less; rows go back to the caller's order at the end.
+        order = sorted(range(len(items)), key=lambda i: len(items[i]))
+        batches = (self.collate([items[i] for i in order[lo:lo + batch_size]]) for lo in range(0, len(items), batch_size))
+        probs = predict_batches(self.model, batches, self.logits)
+        out = np.empty_like(probs)
+        out[order] = probs
+        return out
 
     def trainable_parameters(self) -> list[tuple[str, nn.Parameter]]:
         return [(n, p) for n, p in self.model.named_parameters() if p.requires_grad]

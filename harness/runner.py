@@ -6,8 +6,13 @@ every file atomically. A finished run is never silently redone: `resume=True` sk
 continues an unfinished one from its last checkpoint), `overwrite=True` (alias `force`, CLI
 `--force`) deletes it and runs again; without either it is an error. An unfinished run without a
 checkpoint starts over. Ctrl-C during training saves a checkpoint, marks the run `interrupted`
-and raises `harness.checkpoints.Interrupted` (exit_code 130, as the shell reports a SIGINT). `predict` applies an exported model to
-new rows.
+and raises `harness.checkpoints.Interrupted` (exit_code 130, as the shell reports a SIGINT).
+
+Everything a user can get wrong (the data files, the checkpoint, label words, templates) is read
+and checked before the run folder is touched: a bad input leaves an existing run folder exactly as
+it was (a new folder only records the error in status.json). A resumed run must see the same data
+as the interrupted one. Launched as several processes (see harness.distributed), only the main
+process writes. `predict` applies an exported model to new rows.
 """
 
 from __future__ import annotations
@@ -16,8 +21,10 @@ import csv
 import io
 import json
 import logging
+import os
+import re
 import shutil
-import sys
+import tempfile
 import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -26,15 +33,18 @@ from typing import Any
 import yaml
 
 from harness.audit import audit_data, token_counter
-from harness.config import Config, config_to_dict, dump_config
+from harness.config import Config, config_to_dict, dump_config, key_location
 from harness.data import Split, TaskData, load_task, read_rows
 from harness.errors import HarnessError
+from harness.memory import peak_rss_mb, reset_peak_rss
 from harness.methods import Encoded, Method, build_method, load_builtin_methods
 from harness.runs import (
     atomic_write_json,
     atomic_write_text,
     environment_info,
+    read_json,
     read_status,
+    remove_stale_temporaries,
     run_folder,
     write_status,
 )
@@ -44,17 +54,7 @@ __all__ = ["encode_split", "execute_run", "load_exported", "peak_rss_mb", "predi
 logger = logging.getLogger(__name__)
 
 
-def peak_rss_mb() -> float:
-    """Peak resident memory of this process in MiB (getrusage; psutil's current RSS where that is missing)."""
-    try:
-        import resource
-
-        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        return peak / (1024 * 1024) if sys.platform == "darwin" else peak / 1024  # bytes on macOS, KiB on Linux
-    except ImportError:  # Windows
-        import psutil
-
-        return psutil.Process().memory_info().rss / (1024 * 1024)
+_KEY_FIRST = re.compile(r"^((?:task|model|method|train|eval)(?:\.[A-Za-z_][A-Za-z0-9_]*)+):?\s*")
 
 
 def encode_split(method: Method, split: Split, cfg: Config) -> tuple[list[Encoded], bool]:
@@ -73,20 +73,78 @@ def encode_split(method: Method, split: Split, cfg: Config) -> tuple[list[Encode
     return cached_encode(key, len(split), lambda: method.encode(split.texts, split.labels))
 
 
-def _prepare_folder(folder: Path, resume: bool, overwrite: bool) -> tuple[bool, bool]:
-    """(skip, resume) for this folder, after refusing or clearing a finished run as asked."""
-    state = read_status(folder)["state"] if (folder / "status.json").exists() else None
-    if state == "finished" and not overwrite:
-        if resume:
-            return True, False
-        raise HarnessError(f"run {folder} already finished; use --force to run it again "
-                           "(or --resume to skip finished runs)")
-    can_resume = resume and not overwrite and (folder / "checkpoints" / "last.pt").exists()
-    if folder.exists() and not can_resume:  # a fresh start: nothing of an earlier attempt may leak in
-        if state is None and any(folder.iterdir()):
-            raise HarnessError(f"{folder} exists, is not empty and is not a run folder; move it away")
+def _folder_state(folder: Path) -> str | None:
+    """The state of an earlier attempt in `folder` (None: no run there yet); reads, never writes."""
+    if (folder / "status.json").exists():
+        return str(read_status(folder)["state"])
+    if folder.exists() and any(folder.iterdir()):
+        raise HarnessError(f"{folder} exists, is not empty and is not a run folder; move it away")
+    return None
+
+
+def _start_folder(folder: Path, resume: bool) -> None:
+    """Clear an earlier attempt for a fresh start (nothing of it may leak in), or tidy it for a resume."""
+    if resume:
+        remove_stale_temporaries(folder)  # what a killed writer left; readers never saw it
+    elif folder.exists():
         shutil.rmtree(folder)
-    return False, can_resume
+    folder.mkdir(parents=True, exist_ok=True)
+
+
+def _in_config(cfg: Config, exc: HarnessError) -> HarnessError:
+    """An input error that starts with a config key, located in the config file ("'key' in FILE line N: ...")."""
+    message = str(exc)
+    match = _KEY_FIRST.match(message)
+    if match is None or not Path(cfg.source).is_file() or cfg.source in message:
+        return exc  # data errors name their file and line already
+    return HarnessError(f"{key_location(cfg, match.group(1))}: {message[match.end():]}")
+
+
+def _check_same_data(folder: Path, data: TaskData) -> None:
+    """A resumed run must train on the data the interrupted one trained on."""
+    path = folder / "data.json"
+    if not path.exists():
+        return
+    before = read_json(path)
+    now = data.fingerprint()
+    for name, digest in before.get("files", {}).items():
+        if now["files"].get(name, digest) != digest:
+            raise HarnessError(f"cannot resume {folder.name}: data file {name} changed since the run started "
+                               f"(sha256 {digest[:12]} then, {now['files'][name][:12]} now); "
+                               "run without --resume, or with --force, to start over")
+    for split, info in before.get("splits", {}).items():
+        if info.get("sha256") != now["splits"].get(split, {}).get("sha256"):
+            raise HarnessError(f"cannot resume {folder.name}: the {split} split differs from the one the run "
+                               "started on; run without --resume, or with --force, to start over")
+
+
+def _load_inputs(cfg: Config, resume_from: Path | None) -> tuple[TaskData, Method, dict[str, Any], list[Any]]:
+    """Data, method (checkpoint loaded), data audit and encoded splits: every check on user input."""
+    base = Path(cfg.source).parent if Path(cfg.source).is_file() else None
+    try:
+        data = load_task(cfg.task, seed=cfg.train.seed, base=base)
+        if resume_from is not None:
+            _check_same_data(resume_from, data)
+        method = build_method(cfg.method.kind, cfg=cfg, data=data)
+        tokenizer = getattr(method, "tokenizer", None)
+        audit = audit_data(data, max_length=cfg.train.max_length,
+                           count_tokens=token_counter(tokenizer) if tokenizer is not None else None)
+        encoded = [encode_split(method, s, cfg)[0] for s in data.splits()]
+    except HarnessError as exc:
+        raise _in_config(cfg, exc) from None
+    return data, method, audit, encoded
+
+
+def _save_model(method: Method, target: Path) -> None:
+    """`method.save` into a temporary folder beside `target`, then one rename: model/ appears whole or not at all."""
+    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent))
+    try:
+        method.save(tmp / target.name)
+        if target.exists():
+            shutil.rmtree(target)
+        os.replace(tmp / target.name, target)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
 
 
 def _predictions(split: Split, probs: Any, label_names: Sequence[str]) -> str:
@@ -107,61 +165,85 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
     optimiser step (tests use it to send SIGINT).
     """
     from harness.checkpoints import Interrupted
+    from harness.distributed import is_main_process, predict_sharded, process_state, wait_for_everyone
     from harness.metrics import compute_metrics
     from harness.train import set_threads, train
 
+    processes = process_state().num_processes  # joins launched processes before anything else
+    main = is_main_process()
+    overwrite = overwrite or force
     folder = run_folder(cfg)
-    skip, resume = _prepare_folder(folder, resume, overwrite or force)
-    if skip:
-        log(f"already finished: {folder}")
-        return folder
-    folder.mkdir(parents=True, exist_ok=True)
-    write_status(folder, "running", resumed=resume)
+    state = _folder_state(folder)
+    if state == "finished" and not overwrite:
+        if resume:
+            log(f"already finished: {folder}")
+            return folder
+        raise HarnessError(f"run {folder} already finished; use --force to run it again "
+                           "(or --resume to skip finished runs)")
+    resume = resume and not overwrite and (folder / "checkpoints" / "last.pt").exists()
+    reset_peak_rss()  # this run's own peak, not the largest of a sweep so far
     try:
         threads = set_threads(cfg.train.threads)
-        atomic_write_text(folder / "config.yaml", dump_config(cfg))
-        atomic_write_json(folder / "environment.json", {**environment_info(), "torch_threads": threads})
-        base = Path(cfg.source).parent if Path(cfg.source).is_file() else None
-        data = load_task(cfg.task, seed=cfg.train.seed, base=base)
-        method = build_method(cfg.method.kind, cfg=cfg, data=data)
-        tokenizer = getattr(method, "tokenizer", None)
-        audit = audit_data(data, max_length=cfg.train.max_length,
-                           count_tokens=token_counter(tokenizer) if tokenizer is not None else None)
-        atomic_write_json(folder / "data.json", {**data.fingerprint(), "audit": audit})
-        for finding in audit["findings"]:
-            logger.warning("data: %s", finding)
-        (train_items, _), (dev_items, _), (test_items, _) = (encode_split(method, s, cfg) for s in data.splits())
+        data, method, audit, (train_items, dev_items, test_items) = _load_inputs(cfg, folder if resume else None)
+    except Exception as exc:
+        if main and state is None:  # a new run says why it never started; an earlier attempt is left as it was
+            folder.mkdir(parents=True, exist_ok=True)
+            write_status(folder, "failed", error=str(exc) if isinstance(exc, HarnessError) else
+                         f"{type(exc).__name__}: {exc}")
+        raise
+    if main:
+        _start_folder(folder, resume)
+        write_status(folder, "running", resumed=resume)
+    wait_for_everyone()  # the folder exists before anyone trains
+    try:
+        if main:
+            atomic_write_text(folder / "config.yaml", dump_config(cfg))
+            atomic_write_json(folder / "environment.json",
+                              {**environment_info(), "torch_threads": threads, "processes": processes})
+            atomic_write_json(folder / "data.json", {**data.fingerprint(), "audit": audit})
+            for finding in audit["findings"]:
+                logger.warning("data: %s", finding)
         result = None
         if method.trains:
             result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume,
                            on_step=on_step)
         started = time.perf_counter()
-        probs = method.predict_proba(test_items, cfg.eval.batch_size)
+        probs = predict_sharded(lambda items: method.predict_proba(items, cfg.eval.batch_size), test_items)
         eval_seconds = time.perf_counter() - started
-        metrics = compute_metrics(list(data.test.labels), probs, data.label_names, positive=cfg.eval.positive,
-                                  bootstrap=cfg.eval.bootstrap, ci=cfg.eval.ci, seed=cfg.train.seed)
-        metrics["cost"] = _cost(method, result, eval_seconds)
-        if result is not None:
-            metrics["dev"] = {"best_step": result.best_step, cfg.eval.primary: result.best_value,
-                              "metrics": result.best_metrics, "stopped_early": result.stopped_early}
-        atomic_write_text(folder / "predictions.jsonl", _predictions(data.test, probs, data.label_names))
-        atomic_write_json(folder / "metrics.json", metrics)
-        method.save(folder / "model")
-        atomic_write_json(folder / "method.json", method.describe())
+        if main:
+            metrics = compute_metrics(list(data.test.labels), probs, data.label_names, positive=cfg.eval.positive,
+                                      bootstrap=cfg.eval.bootstrap, ci=cfg.eval.ci, seed=cfg.train.seed)
+            metrics["cost"] = {**_cost(method, result, eval_seconds), "processes": processes}
+            if result is not None:
+                metrics["dev"] = {"best_step": result.best_step, cfg.eval.primary: result.best_value,
+                                  "metrics": result.best_metrics, "stopped_early": result.stopped_early}
+            atomic_write_text(folder / "predictions.jsonl", _predictions(data.test, probs, data.label_names))
+            atomic_write_json(folder / "metrics.json", metrics)
+            _save_model(method, folder / "model")
+            atomic_write_json(folder / "method.json", method.describe())
     except Interrupted as exc:
-        write_status(folder, "interrupted", message=str(exc))
+        if main:
+            write_status(folder, "interrupted", message=str(exc))
+        raise
+    except KeyboardInterrupt:  # Ctrl-C outside the training loop (loading, scoring): nothing half-done is kept
+        if main:
+            write_status(folder, "interrupted", message="stopped by Ctrl-C outside training; run it again "
+                                                        "with --resume to continue from the last checkpoint")
         raise
     except BaseException as exc:
-        write_status(folder, "failed", error=f"{type(exc).__name__}: {exc}")
+        if main:
+            write_status(folder, "failed", error=f"{type(exc).__name__}: {exc}")
         raise
-    write_status(folder, "finished")
-    try:
-        from harness.report import write_run_report
+    if main:
+        write_status(folder, "finished")
+        try:
+            from harness.report import write_run_report
 
-        write_run_report(folder)
-    except Exception as exc:  # the run's results stand; a broken figure must not fail it
-        logger.warning("run %s finished but its report could not be written: %s", folder, exc)
-    _summary(log, folder, cfg, metrics, data)
+            write_run_report(folder)
+        except Exception as exc:  # the run's results stand; a broken figure must not fail it
+            logger.warning("run %s finished but its report could not be written: %s", folder, exc)
+        _summary(log, folder, cfg, metrics, data)
+    wait_for_everyone()  # no process reports done before the folder is complete
     return folder
 
 
@@ -198,23 +280,40 @@ def load_exported(run_dir: Path | str) -> Any:
     run_dir = Path(run_dir)
     from harness.runs import require_finished
 
-    require_finished(run_dir, need=("method.json", "model"))
-    kind = json.loads((run_dir / "method.json").read_text(encoding="utf-8")).get("kind")
+    # the whole folder must be sound, not only the files read here: a damaged run is not one to trust
+    require_finished(run_dir, need=("config.yaml", "metrics.json", "predictions.jsonl", "method.json", "model"))
+    kind = read_json(run_dir / "method.json").get("kind")
+    loader: Any
     if kind == "head":
-        from harness.export import load_head_model
-
-        return load_head_model(run_dir / "model")
-    loader = getattr(load_builtin_methods().get(str(kind)), "load_exported", None)
+        from harness.export import load_head_model as loader
+    else:
+        loader = getattr(load_builtin_methods().get(str(kind)), "load_exported", None)
     if loader is None:
         raise HarnessError(f"{run_dir}: runs of method {kind!r} cannot be reloaded for prediction")
-    return loader(run_dir / "model")
+    try:
+        return loader(run_dir / "model")
+    except (json.JSONDecodeError, KeyError, OSError, ValueError) as exc:  # a damaged or hand-edited export
+        raise HarnessError(f"{run_dir / 'model'} cannot be reloaded ({type(exc).__name__}: "
+                           f"{str(exc).splitlines()[0] if str(exc) else ''}); half-written or edited by hand?") from None
+
+
+def _saved_task(path: Path) -> dict[str, Any]:
+    """The task section of a run's saved config.yaml, with a message naming the file when it is damaged."""
+    try:
+        saved = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError:
+        raise HarnessError(f"{path} is not valid YAML: half-written or edited by hand?") from None
+    task = saved.get("task") if isinstance(saved, dict) else None
+    if not isinstance(task, dict) or "text" not in task:
+        raise HarnessError(f"{path} has no task section with a 'text' key: half-written or edited by hand?")
+    return task
 
 
 def predict(run_dir: Path | str, input_path: Path | str, output_path: Path | str) -> Path:
     """Label new rows: the input's columns plus `predicted` and `prob_<label>` for every label (CSV out)."""
     run_dir, input_path, output_path = Path(run_dir), Path(input_path), Path(output_path)
     exported = load_exported(run_dir)
-    task = yaml.safe_load((run_dir / "config.yaml").read_text(encoding="utf-8"))["task"]
+    task = _saved_task(run_dir / "config.yaml")
     columns = task["text"] if isinstance(task["text"], list) else [task["text"]]
     rows, lines = read_rows(input_path)
     if not rows:

@@ -28,6 +28,7 @@ __all__ = [
     "environment_info",
     "read_json",
     "read_status",
+    "remove_stale_temporaries",
     "require_finished",
     "run_folder",
     "run_id",
@@ -52,6 +53,26 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
+
+
+def remove_stale_temporaries(folder: Path) -> list[Path]:
+    """Delete the temporary files (`.NAME.*.tmp`) a killed writer left in `folder` and its subfolders.
+
+    Never needed for correctness (readers only see renamed files), but a run resumed after a kill
+    should not carry the dead process's half-written leftovers.
+    """
+    import shutil
+
+    removed: list[Path] = []
+    if not folder.is_dir():
+        return removed
+    for path in sorted(folder.rglob(".*.tmp")):
+        if path.is_dir():
+            shutil.rmtree(path, ignore_errors=True)
+        else:
+            path.unlink(missing_ok=True)
+        removed.append(path)
+    return removed
 
 
 def atomic_write_text(path: Path, text: str) -> None:
@@ -87,8 +108,9 @@ def run_folder(cfg: Config) -> Path:
     """`<output>/<task>/<run-id>`, refusing any path that would leave the output folder."""
     root = Path(cfg.output).resolve()
     folder = (root / cfg.task.name / run_id(cfg)).resolve()
-    if root not in folder.parents:
-        raise HarnessError(f"task.name {cfg.task.name!r} would put the run outside the output folder {root}")
+    if root not in folder.parents:  # a '..' in a name, or a link inside the output folder pointing out of it
+        raise HarnessError(f"'task.name' in {cfg.source}: {cfg.task.name!r} would put the run outside the output "
+                           f"folder {root} (at {folder}); use a plain name, and no link under {root}")
     return folder
 
 
@@ -117,7 +139,7 @@ def read_status(folder: Path) -> dict[str, Any]:
 
 
 def require_finished(folder: Path, *, need: tuple[str, ...] = ("metrics.json", "predictions.jsonl")) -> dict[str, Any]:
-    """Refuse a run that did not finish or is missing files, with a message naming it."""
+    """Refuse a run that did not finish, lacks a needed file or holds one that does not parse, naming it."""
     status = read_status(folder)
     if status["state"] != "finished":
         extra = f": {status['error']}" if status.get("error") else ""
@@ -125,7 +147,22 @@ def require_finished(folder: Path, *, need: tuple[str, ...] = ("metrics.json", "
     for name in need:
         if not (folder / name).exists():
             raise HarnessError(f"run {folder} says finished but has no {name}; it is incomplete")
+        _check_parses(folder / name)
     return status
+
+
+def _check_parses(path: Path) -> None:
+    """A JSON or JSON-lines file must parse to the end: a truncated one is refused, naming the file (and line)."""
+    if path.suffix == ".json":
+        read_json(path)
+    elif path.suffix == ".jsonl":
+        for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), start=1):
+            if not line.strip():
+                continue
+            try:
+                json.loads(line)
+            except json.JSONDecodeError:
+                raise HarnessError(f"{path} line {number} is not valid JSON: half-written or edited by hand?") from None
 
 
 def environment_info() -> dict[str, Any]:

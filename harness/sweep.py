@@ -5,12 +5,13 @@ A sweep is a list of ordinary runs (each with its own deterministic id and folde
 and resumes interrupted ones, so a killed sweep costs only the run it was in. Data files are
 hashed when the sweep starts and checked before and after every run: a run that saw another
 version of a file fails with a message naming it, so one sweep never mixes two versions.
+sweep.json also records each run's peak memory and the memory left once it is over and collected,
+so growth from run to run (a leak) shows.
 """
 
 from __future__ import annotations
 
 import itertools
-import json
 import re
 import time
 from collections.abc import Callable, Sequence
@@ -21,6 +22,7 @@ from harness.config import Config, config_from_dict, config_to_dict, load_config
 from harness.data import file_sha256
 from harness.errors import HarnessError
 from harness.runs import atomic_write_json, read_json, read_status, run_folder, run_id, write_status
+from harness.sweep_plan import estimate_runs, log_plan
 
 __all__ = ["data_files", "estimate_runs", "expand_sweep", "parse_shard", "run_sweep", "sweep_command", "sweep_folder"]
 
@@ -167,15 +169,28 @@ def _record(index: int, cfg: Config) -> dict[str, Any]:
             "train_size": cfg.task.train_size, **({"error": status["error"]} if status.get("error") else {})}
 
 
-def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config]) -> list[dict[str, Any]]:
+def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
+                 memory: dict[int, dict[str, float | None]] | None = None) -> list[dict[str, Any]]:
+    from harness.distributed import is_main_process
+
     records = [_record(i, cfg) for i, cfg in enumerate(runs)]
-    atomic_write_json(folder / "sweep.json", {**meta, "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-                                              "runs": records})
+    for i, mem in (memory or {}).items():
+        records[i]["memory"] = mem
+    if is_main_process():  # under `accelerate launch` every process walks the sweep; one writes
+        atomic_write_json(folder / "sweep.json", {**meta, "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+                                                  "runs": records})
     return records
 
 
-def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log) -> str:
-    """Run (or skip, or resume) one run of the sweep; return its final state."""
+def _mark_failed(folder: Path, message: str) -> None:
+    from harness.distributed import is_main_process
+
+    if is_main_process():
+        write_status(folder, "failed", error=message)
+
+
+def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log) -> tuple[str, bool]:
+    """Run (or skip, or resume) one run of the sweep; return its final state and whether it ran."""
     from harness import runner  # looked up at call time so tests can replace execute_run
     from harness.checkpoints import Interrupted
 
@@ -184,12 +199,12 @@ def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log) -> str:
     stale = _changed_in_run(folder, start) if state != "new" else None
     if state == "finished" and stale is None:
         log(f"{tag} done")
-        return "finished"
+        return "finished", False
     changed = _changed_now(cfg, start)
     if changed is not None:
-        write_status(folder, "failed", error=changed)
+        _mark_failed(folder, changed)
         log(f"{tag} failed: {changed}")
-        return "failed"
+        return "failed", False
     if stale is not None:
         log(f"{tag} an earlier attempt read other data ({stale}); starting it again")
     resume = stale is None and (folder / "checkpoints" / "last.pt").is_file()  # what the runner resumes from
@@ -201,15 +216,15 @@ def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log) -> str:
     except Exception as exc:  # why: one broken run must not stop the rest; the error goes to status.json
         message = str(exc) if isinstance(exc, HarnessError) else f"{type(exc).__name__}: {exc}"
         if _state(folder)["state"] != "failed":
-            write_status(folder, "failed", error=message)
+            _mark_failed(folder, message)
         log(f"{tag} failed: {(message.splitlines() or [type(exc).__name__])[0]}")
-        return "failed"
+        return "failed", True
     changed = _changed_in_run(folder, start)
     if changed is not None:
-        write_status(folder, "failed", error=changed)
+        _mark_failed(folder, changed)
         log(f"{tag} failed: {changed}")
-        return "failed"
-    return _state(folder)["state"]
+        return "failed", True
+    return _state(folder)["state"], True
 
 
 def run_sweep(
@@ -225,17 +240,23 @@ def run_sweep(
     _note_rules(cfg, hits, log)
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
     states: dict[int, str] = {}
+    memory: dict[int, dict[str, float | None]] = {}
     try:
         for n, i in enumerate(picked):
             tag = f"[{n + 1}/{len(picked)}] #{i} {run_id(runs[i])}:"
-            states[i] = _run_one(runs[i], start, tag, log)
-            _write_index(folder, meta, runs)
+            states[i], ran = _run_one(runs[i], start, tag, log)
+            if ran:
+                memory[i] = _memory_after()
+            _write_index(folder, meta, runs, memory)
     finally:  # a kill mid-run still leaves an up-to-date index
-        records = _write_index(folder, meta, runs)
+        records = _write_index(folder, meta, runs, memory)
     failed = [i for i in picked if states.get(i) != "finished"]
-    summary: dict[str, Any] = {"folder": str(folder), "runs": records, "picked": picked, "failed": failed}
+    summary: dict[str, Any] = {"folder": str(folder), "runs": records, "picked": picked, "failed": failed,
+                               "data_changed": _changed_since(start)}
     log(f"sweep {name}: {len(picked) - len(failed)} finished, {len(failed)} failed; index in {folder / 'sweep.json'}")
-    if compare and any(r["state"] == "finished" for r in records):
+    from harness.distributed import is_main_process
+
+    if compare and is_main_process() and any(r["state"] == "finished" for r in records):
         from harness.compare import compare_runs
 
         # every started run goes in: compare lists unfinished ones as left out instead of averaging them
@@ -251,64 +272,31 @@ def run_sweep(
     return summary
 
 
+def _memory_after() -> dict[str, float | None]:
+    """Memory once a run is over and collected: what the next run starts from (growth here is a leak)."""
+    import gc
+
+    from harness.memory import current_rss_mb, peak_rss_mb
+
+    peak = peak_rss_mb()  # since the runner reset the window at the run's start: scoring and report included
+    gc.collect()  # the finished run's model, optimiser and batches are garbage now; return them before the next
+    return {"peak_rss_mb": round(peak, 1), "rss_mb_after": round(current_rss_mb(), 1)}
+
+
+def _changed_since(start: dict[str, str]) -> str | None:
+    """The first data file whose bytes now differ from the sweep start, as a message; None when none."""
+    for name, digest in start.items():
+        path = Path(name)
+        now = file_sha256(path) if path.is_file() else "missing"
+        if now != digest:
+            return f"data file {path} changed while the sweep ran (sha256 {digest[:12]} -> {now[:12]})"
+    return None
+
+
 def _note_rules(cfg: Config, hits: list[int], log: Log) -> None:
     for i, count in enumerate(hits):
         if count == 0:
             log(f"note: sweep.exclude[{i}] in {cfg.source} matches no combination (a misspelt value?)")
-
-
-def _example_epochs(cfg: Config, train_rows: int) -> float:
-    """Training examples seen: rows x epochs, capped by max_steps; 0 for prompt (no training)."""
-    if cfg.method.kind == "prompt":
-        return 0.0
-    seen = train_rows * cfg.train.epochs
-    if cfg.train.max_steps is not None:
-        seen = min(seen, cfg.train.max_steps * cfg.train.batch_size * cfg.train.grad_accum)
-    return float(seen)
-
-
-def _train_seconds(folder: Path) -> float | None:
-    try:
-        cost = read_json(folder / "metrics.json").get("cost", {})
-    except HarnessError:
-        return None
-    value = cost.get("train_seconds")
-    return float(value) if isinstance(value, (int, float)) else None
-
-
-def estimate_runs(runs: Sequence[Config]) -> list[dict[str, Any]]:
-    """Per run: state, training rows, examples x epochs and training seconds, measured or estimated.
-
-    Estimates use only finished runs of the same checkpoint, method and max_length (seconds per
-    example-epoch); with none to go on the estimate is None ('unknown'), never a made-up rate.
-    """
-    from harness.data import load_task
-
-    rows_cache: dict[str, int] = {}
-    out = []
-    for cfg in runs:
-        key = json.dumps([config_to_dict(cfg)["task"], cfg.train.seed], sort_keys=True)
-        if key not in rows_cache:  # the same base folder as the runner's
-            base = Path(cfg.source).parent if Path(cfg.source).is_file() else None
-            rows_cache[key] = len(load_task(cfg.task, seed=cfg.train.seed, base=base).train)
-        folder = run_folder(cfg)
-        state = _state(folder)["state"]
-        rows = rows_cache[key]
-        out.append({"cfg": cfg, "id": run_id(cfg), "state": state, "train_rows": rows,
-                    "example_epochs": _example_epochs(cfg, rows), "group": (cfg.model.checkpoint, cfg.method.kind,
-                                                                            cfg.train.max_length),
-                    "measured": _train_seconds(folder) if state == "finished" else None})
-    rates: dict[Any, list[float]] = {}
-    for r in out:
-        if r["measured"] is not None and r["example_epochs"] > 0:
-            acc = rates.setdefault(r["group"], [0.0, 0.0, 0.0])  # seconds, example-epochs, runs
-            acc[0], acc[1], acc[2] = acc[0] + r["measured"], acc[1] + r["example_epochs"], acc[2] + 1
-    for r in out:
-        sums = rates.get(r["group"])
-        r["estimate"] = 0.0 if r["example_epochs"] == 0 else (
-            sums[0] / sums[1] * r["example_epochs"] if sums else None)
-        r["basis"] = int(sums[2]) if sums else 0
-    return out
 
 
 def _dry_run(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log) -> int:
@@ -318,29 +306,7 @@ def _dry_run(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log) ->
     plan = estimate_runs([runs[i] for i in picked])
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {shard[0]}/{shard[1]}: {len(picked)}")
         + f"; sweep folder {sweep_folder(cfg, name)}")
-    log(f"{'#':>3}  {'run id':<40} {'checkpoint':<22} {'method':<10} {'seed':>5} {'train':>6} {'state':<11} train time")
-    known, unknown, estimated, examples = 0.0, 0, 0, 0.0
-    for i, r in zip(picked, plan, strict=True):
-        c = r["cfg"]
-        if r["measured"] is not None:
-            when = f"{r['measured']:.1f} s measured"
-        elif r["estimate"] is None:
-            when, unknown = "unknown", unknown + 1
-        elif r["example_epochs"] == 0:
-            when = "0 s (no training)"
-        else:
-            when, estimated = f"~{r['estimate']:.1f} s estimated from {r['basis']} finished run(s) like it", estimated + 1
-        if r["state"] != "finished":
-            known += r["estimate"] or 0.0
-            examples += r["example_epochs"]
-        log(f"{i:>3}  {r['id']:<40} {c.model.checkpoint[:22]:<22} {c.method.kind:<10} {c.train.seed:>5} "
-            f"{r['train_rows']:>6} {r['state']:<11} {when}")
-    todo = sum(1 for r in plan if r["state"] != "finished")
-    when = f"~{known:.0f} s estimated from measured rates" if estimated else ""
-    if unknown:  # said plainly rather than guessed: a rate from another checkpoint would mislead
-        when += (" plus " if when else "") + f"{unknown} runs of unknown cost (no finished run like them yet)"
-    log(f"to run: {todo} runs, {examples:g} training examples x epochs; training time: {when or '0 s'}; "
-        "scoring time not included")
+    log_plan(picked, plan, log)
     return 0
 
 
@@ -348,7 +314,11 @@ def sweep_command(
     config_path: Path, overrides: Sequence[str] = (), *, dry_run: bool = False, shard: str | None = None,
     compare: bool = True,
 ) -> int:
-    """`harness sweep CONFIG`: exit 0 when every run (of the shard) finished, 1 when some failed."""
+    """`harness sweep CONFIG`: exit 0 when every run (of the shard) finished, 1 when some failed.
+
+    A data file that changed while the sweep ran is a HarnessError (exit 2) naming it, after the index
+    is written: the runs after the change were refused, and the sweep must be run again.
+    """
     parts = parse_shard(shard)
     cfg = load_config(config_path, overrides)
     if not cfg.sweep.grid:
@@ -356,5 +326,12 @@ def sweep_command(
     name = Path(config_path).stem
     if dry_run:
         return _dry_run(cfg, name, parts, print)
-    summary = run_sweep(cfg, name, shard=parts, compare=compare)
+    from harness.distributed import is_main_process
+
+    quiet: Log = lambda _: None  # noqa: E731 - the other processes of a launch walk the sweep silently
+    summary = run_sweep(cfg, name, shard=parts, compare=compare, log=print if is_main_process() else quiet)
+    if summary["data_changed"]:  # not a broken run but changed input: the user must re-run, as for a bad config
+        raise HarnessError(f"{summary['data_changed']}; {len(summary['failed'])} runs were not run on one version "
+                           f"of it (listed in {Path(summary['folder']) / 'sweep.json'}): run 'harness sweep "
+                           f"{config_path}' again to redo them on the new version")
     return 1 if summary["failed"] else 0

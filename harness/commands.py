@@ -38,6 +38,11 @@ def _token_counter(cfg: Any) -> Any:
     from harness.backbones import resolve_source
 
     source, gguf = resolve_source(cfg.model.checkpoint)
+    if cfg.model.trust_remote_code:
+        import logging
+
+        logging.getLogger(__name__).warning("model.trust_remote_code is on: code shipped with %s will run",
+                                            cfg.model.checkpoint)
     tokenizer = AutoTokenizer.from_pretrained(source, gguf_file=gguf, trust_remote_code=cfg.model.trust_remote_code)
     return token_counter(tokenizer)
 

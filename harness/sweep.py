@@ -321,8 +321,9 @@ def sweep_command(
     """
     parts = parse_shard(shard)
     cfg = load_config(config_path, overrides)
-    if not cfg.sweep.grid:
-        raise HarnessError(f"{config_path} has no sweep.grid; run a single config with 'harness run {config_path}'")
+    if not cfg.sweep.grid and not cfg.sweep.arms:
+        raise HarnessError(f"{config_path} has no sweep.grid or sweep.arms; run a single config with "
+                           f"'harness run {config_path}'")
     name = Path(config_path).stem
     if dry_run:
         return _dry_run(cfg, name, parts, print)

@@ -1,0 +1,188 @@
+"""Ablations of the training and evaluation speed choices, measured in one process, alternating (ABBA).
+
+Each training variant trains a fresh `head` model with `harness.train.train` on the same slice of
+the training split and differs from the base settings in one choice only. Throughput is the
+steady state: examples of steps 2..N over the time between the end of step 1 and the end of step
+N (the first step pays for allocations; evaluation and checkpoints after the last step are
+outside the window). Variants that are not config settings are applied as small wrappers:
+- `pad_to_max_length`: the batch is padded on to train.max_length after the dynamic collate;
+- `host_sync_every_step`: the loss is read on the host (`float(loss)`) after every batch;
+- `per_tensor_adamw`: the optimizer is rebuilt without the fused kernel (torch's default on the CPU).
+Run by scripts/bench.py through harness.bench_jobs, never by tests.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import torch
+import torch.nn.functional as F
+
+__all__ = ["TRAIN_VARIANTS", "run_ablations", "train_variants"]
+
+# name -> (config overrides, wrapper name or None); compared against "base".
+TRAIN_VARIANTS: dict[str, tuple[dict[str, Any], str | None]] = {
+    "base": ({}, None),
+    "random batches (no length grouping)": ({"train.batching": "random"}, None),
+    "pad to max_length (no dynamic padding)": ({}, "pad_to_max_length"),
+    "threads = 2 x logical cores (oversubscribed)": ({"train.threads": 2 * (os.cpu_count() or 1)}, None),
+    "loss read on the host every step": ({}, "host_sync_every_step"),
+    "per-tensor AdamW (not fused)": ({}, "per_tensor_adamw"),
+}
+
+
+def train_variants(settings: dict[str, Any]) -> dict[str, tuple[dict[str, Any], str | None]]:
+    """TRAIN_VARIANTS plus the two optional settings (bf16 autocast, frozen embeddings) flipped from the base."""
+    bf16 = bool(settings.get("train.bf16", False))
+    frozen = settings.get("method.freeze", "none") == "embeddings"
+    return {**TRAIN_VARIANTS,
+            f"bf16 autocast {'off' if bf16 else 'on'}": ({"train.bf16": not bf16}, None),
+            f"embeddings {'trained' if frozen else 'frozen'}": ({"method.freeze": "none" if frozen else "embeddings"},
+                                                                None)}
+
+
+def _pad_right(batch: dict[str, torch.Tensor], width: int, pad_id: int) -> dict[str, torch.Tensor]:
+    out = dict(batch)
+    for key in ("input_ids", "attention_mask", "token_type_ids"):
+        if key in out:
+            extra = width - out[key].shape[1]
+            out[key] = F.pad(out[key], (0, extra), value=pad_id if key == "input_ids" else 0)  # (batch, width)
+    return out
+
+
+@contextlib.contextmanager
+def _wrapped(method: Any, wrapper: str | None, cfg: Any) -> Iterator[list[tuple[int, int, int]]]:
+    """Apply one wrapper; yields the list that records (examples, real tokens, padded tokens) per batch."""
+    import harness.train as loop
+
+    records: list[tuple[int, int, int]] = []
+    collate, loss, make_optimizer = method.collate, method.loss, loop.make_optimizer
+
+    def recording_collate(items: Any) -> dict[str, torch.Tensor]:
+        batch = collate(items)
+        if wrapper == "pad_to_max_length":
+            batch = _pad_right(batch, method.max_length, method.tokenizer.pad_token_id)
+        records.append((len(items), sum(len(it) for it in items), int(batch["input_ids"].numel())))
+        return batch
+
+    def syncing_loss(batch: dict[str, torch.Tensor]) -> torch.Tensor:
+        value = loss(batch)
+        float(value.detach())  # the per-step host read the harness loop avoids
+        return value
+
+    def per_tensor_optimizer(m: Any, c: Any) -> torch.optim.Optimizer:
+        fused = make_optimizer(m, c)
+        groups = [{k: g[k] for k in ("params", "lr", "weight_decay")} for g in fused.param_groups]
+        return torch.optim.AdamW(groups, lr=c.train.learning_rate, fused=False, foreach=False)
+
+    method.collate = recording_collate
+    if wrapper == "host_sync_every_step":
+        method.loss = syncing_loss
+    if wrapper == "per_tensor_adamw":
+        loop.make_optimizer = per_tensor_optimizer  # type: ignore[assignment]
+    try:
+        yield records
+    finally:
+        method.collate, method.loss, loop.make_optimizer = collate, loss, make_optimizer
+
+
+def _train_variant(job: dict[str, Any], name: str, data: Any) -> dict[str, Any]:
+    from harness.bench_jobs import build_config
+    from harness.head_method import HeadMethod
+    from harness.train import train
+
+    overrides, wrapper = train_variants(job.get("settings", {}))[name]
+    with tempfile.TemporaryDirectory(prefix="bench-ablate-") as tmp:
+        cfg = build_config({**job, "settings": {**job.get("settings", {}), **overrides}}, Path(tmp))
+        method = HeadMethod(cfg=cfg, data=data)
+        n = job["ablation_examples"]
+        train_items = method.encode(data.train.texts[:n], data.train.labels[:n])
+        dev_items = method.encode(data.dev.texts[:32], data.dev.labels[:32])
+        stamps: list[float] = []
+        with _wrapped(method, wrapper, cfg) as records:
+            train(method, train_items, dev_items, data.label_names, cfg, Path(tmp),
+                  on_step=lambda _step: stamps.append(time.perf_counter()))
+    steady = records[1:len(stamps)]  # batches of steps 2..N (grad_accum is 1 here)
+    seconds = stamps[-1] - stamps[0]
+    return {"examples_per_second": sum(r[0] for r in steady) / seconds, "seconds": seconds, "steps": len(stamps),
+            "real_tokens": sum(r[1] for r in steady), "padded_tokens": sum(r[2] for r in steady),
+            "threads": torch.get_num_threads()}
+
+
+def _timed(fn: Callable[[], Any]) -> float:
+    start = time.perf_counter()
+    fn()
+    return time.perf_counter() - start
+
+
+def _eval_variants(job: dict[str, Any], data: Any) -> dict[str, list[float]]:
+    """Seconds of one test-slice evaluation per variant: the harness path against three simpler loops."""
+    from harness.bench_jobs import build_config
+    from harness.head_method import HeadMethod, predict_batches
+    from harness.train import set_threads
+
+    with tempfile.TemporaryDirectory(prefix="bench-eval-") as tmp:
+        cfg = build_config(job, Path(tmp))
+    set_threads(cfg.train.threads)
+    method = HeadMethod(cfg=cfg, data=data)
+    n, bs = job["ablation_examples"], cfg.eval.batch_size
+    items = method.encode(data.test.texts[:n], data.test.labels[:n])
+    by_length = sorted(items, key=len)
+    model = method.model.eval()
+
+    def loop(rows: Any, context: Callable[[], Any]) -> Callable[[], Any]:
+        def run() -> None:
+            with context():
+                for lo in range(0, len(rows), bs):
+                    torch.softmax(method.logits(method.collate(rows[lo:lo + bs])), dim=-1)
+        return run
+
+    variants: dict[str, Callable[[], Any]] = {
+        "harness (length-sorted, inference_mode)": lambda: method.predict_proba(items, bs),
+        "in given order, inference_mode": lambda: predict_batches(
+            model, (method.collate(items[i:i + bs]) for i in range(0, len(items), bs)), method.logits),
+        "length-sorted, no_grad": loop(by_length, torch.no_grad),
+        "length-sorted, autograd on": loop(by_length, contextlib.nullcontext),
+    }
+    times: dict[str, list[float]] = {k: [] for k in variants}
+    names = list(variants)
+    for order in (names, names[::-1], names, names[::-1]):  # ABBA twice
+        for name in order:
+            times[name].append(_timed(variants[name]))
+    return times
+
+
+def _token_cache(job: dict[str, Any], data: Any) -> dict[str, float]:
+    """Seconds to tokenise the training split (cache miss) and to read it back (cache hit)."""
+    from harness.bench_jobs import build_config
+    from harness.head_method import HeadMethod
+    from harness.runner import encode_split
+
+    with tempfile.TemporaryDirectory(prefix="bench-cache-") as tmp:
+        os.environ["HARNESS_CACHE"] = tmp  # an empty cache: the first call must tokenise
+        cfg = build_config(job, Path(tmp))
+        method = HeadMethod(cfg=cfg, data=data)
+        miss = _timed(lambda: encode_split(method, data.train, cfg))
+        hits = [_timed(lambda: encode_split(method, data.train, cfg)) for _ in range(3)]
+    return {"miss_seconds": miss, "hit_seconds": min(hits), "examples": len(data.train)}
+
+
+def run_ablations(job: dict[str, Any]) -> dict[str, Any]:
+    """Every training variant twice (ABBA order), the evaluation variants and the token cache."""
+    from harness.bench_jobs import build_config
+    from harness.data import load_task
+
+    with tempfile.TemporaryDirectory() as tmp:
+        data = load_task(build_config(job, Path(tmp)).task, seed=job["seed"])
+    names = list(train_variants(job.get("settings", {})))
+    runs: dict[str, list[dict[str, Any]]] = {k: [] for k in names}
+    for name in names + names[::-1]:
+        runs[name].append(_train_variant(job, name, data))
+    return {"contender": "ablation", "train": runs, "eval_seconds": _eval_variants(job, data),
+            "token_cache": _token_cache(job, data)}

@@ -6,7 +6,6 @@ stores it in `data.json`, so a comparison can show what each model was trained o
 
 from __future__ import annotations
 
-import json
 from collections import Counter
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -14,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from harness.data import Split, TaskData
+from harness.data import Split, TaskData, text_key
 
 __all__ = ["audit_data", "render_audit", "suggest_max_length", "token_counter", "write_audit"]
 
@@ -22,7 +21,7 @@ Tokenize = Callable[[Sequence[Any]], list[int]]  # texts -> token counts
 
 
 def _key(text: Any) -> str:
-    return json.dumps(text, ensure_ascii=False) if isinstance(text, tuple) else text.strip().lower()
+    return text_key(text)
 
 
 def token_counter(tokenizer: Any) -> Tokenize:

@@ -21,7 +21,7 @@ from typing import Any
 from harness.config import TaskConfig
 from harness.errors import HarnessError
 
-__all__ = ["Split", "TaskData", "file_sha256", "load_task", "read_rows", "stratified_carve", "subsample"]
+__all__ = ["Split", "TaskData", "file_sha256", "text_key", "load_task", "read_rows", "stratified_carve", "subsample"]
 
 _FORMATS = {".csv": "csv", ".tsv": "tsv", ".tab": "tsv", ".jsonl": "jsonl", ".json": "jsonl",
             ".parquet": "parquet", ".pq": "parquet"}
@@ -88,6 +88,16 @@ class TaskData:
             }
         out["notes"] = list(self.notes)
         return out
+
+
+def text_key(text: str | tuple[str, str]) -> str:
+    """What counts as the same text: case and runs of white space ignored (pairs part by part).
+
+    The carve-out split, `dedupe` and the audit's duplicate and leakage counts all use this one key,
+    so a message repeated with other capitals cannot land in train and test at once.
+    """
+    parts = text if isinstance(text, tuple) else (text,)
+    return json.dumps([" ".join(p.split()).casefold() for p in parts], ensure_ascii=False)
 
 
 def file_sha256(path: Path) -> str:
@@ -363,8 +373,12 @@ def load_task(cfg: TaskConfig, *, seed: int = 0, base: Path | None = None) -> Ta
         splits[name] = Split(name, tuple(ids), tuple(texts), tuple(index[x] for x in labels), src, tuple(lines))
     train = splits["train"]
     if cfg.dedupe:
-        seen: set[Any] = set()
-        keep = [i for i, t in enumerate(train.texts) if not (t in seen or seen.add(t))]  # type: ignore[func-returns-value]
+        seen: set[str] = set()
+        keep = []
+        for i, t in enumerate(train.texts):
+            if text_key(t) not in seen:
+                seen.add(text_key(t))
+                keep.append(i)
         if len(keep) < len(train):
             notes.append(f"dedupe: dropped {len(train) - len(keep)} repeated texts from train")
         train = train.select(keep)
@@ -373,7 +387,7 @@ def load_task(cfg: TaskConfig, *, seed: int = 0, base: Path | None = None) -> Ta
             continue
         if fraction <= 0:
             raise HarnessError(f"task.{name} is not set and task.{name}_fraction is 0: there is no {name} split")
-        groups = [json.dumps(t) for t in train.texts]
+        groups = [text_key(t) for t in train.texts]
         kept, carved = stratified_carve(train.labels, groups, fraction, cfg.split_seed + (1 if name == "dev" else 0))
         splits[name] = train.select(carved, name)
         train = train.select(kept)

@@ -200,3 +200,14 @@ def test_fingerprint_changes_with_content(tmp_path: Path) -> None:
 def test_suggest_max_length() -> None:
     assert suggest_max_length([10] * 99 + [500]) == 16
     assert suggest_max_length(list(range(1, 101))) == 104
+
+
+def test_case_variants_count_as_one_text_everywhere(tmp_path: Path) -> None:
+    # A collection that repeats a message with other capitals (seen in the SMS Spam Collection:
+    # "... later in meeting." / "... later In meeting.") must not put the two copies in two splits.
+    rows = "".join(f"r{i},{'Call Later In Meeting' if i % 2 else 'call later  in meeting'} {i // 2},"
+                   f"{'a' if (i // 2) % 3 else 'b'}\n" for i in range(120))
+    data = load_task(task(tmp_path, HEADER + rows))
+    assert audit_data(data)["leakage"] == {"train/dev": 0, "train/test": 0, "dev/test": 0}
+    deduped = load_task(task(tmp_path, HEADER + rows, HEADER + ROWS, HEADER + ROWS, dedupe=True))
+    assert len(deduped.train) == 60

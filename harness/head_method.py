@@ -27,9 +27,14 @@ from harness.errors import HarnessError
 from harness.heads import ClassifierHead, HeadModel, build_pooling, pad_batch, resolve_pooling
 from harness.methods import Encoded, register_method
 
-__all__ = ["HeadMethod", "class_weights", "collate_encoded", "count_parameters", "encode_texts", "predict_batches"]
+__all__ = ["PAD_MULTIPLE", "HeadMethod", "class_weights", "collate_encoded", "count_parameters", "encode_texts", "predict_batches"]
 
 _EMBEDDING_PARTS = {"embeddings", "wte", "wpe", "embed_tokens", "embed_positions", "shared"}
+# Batch widths are rounded up to a multiple of this. Why: a width for every length from 1 to max_length
+# means a new set of matrix shapes nearly every batch; the CPU kernel library keeps the kernels it builds
+# per shape, and the allocator splits and keeps blocks of every size. Measured on MiniLM / SMS spam
+# (scripts/bench.py, 2 epochs): peak memory 2.0 GB -> 1.6 GB at the same speed, for ~7 % more padding.
+PAD_MULTIPLE = 8
 
 
 def class_weights(spec: str | dict[str, float] | None, train_labels: Sequence[int],
@@ -124,10 +129,12 @@ def encode_texts(tokenizer: Any, texts: Sequence[Any], labels: Sequence[int], ma
     return out
 
 
-def collate_encoded(items: Sequence[Encoded], pad_id: int, type_ids: bool) -> dict[str, torch.Tensor]:
-    """A right-padded batch with labels."""
+def collate_encoded(items: Sequence[Encoded], pad_id: int, type_ids: bool,
+                    limit: int | None = None) -> dict[str, torch.Tensor]:
+    """A right-padded batch with labels; with a `limit` (max_length) its width is rounded up to PAD_MULTIPLE."""
     types = [it.extra["token_type_ids"] for it in items] if type_ids else None  # type: ignore[index]
-    batch = pad_batch([it.input_ids for it in items], pad_id, type_ids=types)
+    multiple = PAD_MULTIPLE if limit is not None else 1  # without a limit, rounding could pass the positions
+    batch = pad_batch([it.input_ids for it in items], pad_id, type_ids=types, multiple=multiple, limit=limit)
     batch["labels"] = torch.tensor([it.label for it in items], dtype=torch.long)
     return batch
 
@@ -197,8 +204,8 @@ class HeadMethod:
         return encode_texts(self.tokenizer, texts, labels, self.max_length, self.uses_type_ids)
 
     def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
-        """Right-pad to the longest example of the batch."""
-        return collate_encoded(items, self.tokenizer.pad_token_id, self.uses_type_ids)
+        """Right-pad to the longest example of the batch (rounded up to PAD_MULTIPLE, within max_length)."""
+        return collate_encoded(items, self.tokenizer.pad_token_id, self.uses_type_ids, limit=self.max_length)
 
     def logits(self, batch: dict[str, torch.Tensor]) -> torch.Tensor:
         return self.model(batch["input_ids"], batch["attention_mask"], batch.get("token_type_ids"))

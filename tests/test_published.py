@@ -88,7 +88,8 @@ def test_minilm_head_on_sms_spam_reaches_published_accuracy(tmp_path: Path) -> N
     # SVM, from memory). Ours: a 6-layer encoder, 2,000 training messages, one epoch.
     assert metrics["metrics"]["accuracy"] >= 0.97
     # Accuracy alone says little here: answering "ham" always scores ~0.87. Spam F1 >= 0.90 demands
-    # that most spam is caught with few false alarms (the same BERT papers report spam F1 ~0.95+).
+    # that most spam is caught with few false alarms; a published fine-tuned BERT on this collection
+    # reports spam precision 0.973, recall 0.964, F1 0.969 (model card of niru-nny/SMS_Spam_Detection).
     assert metrics["metrics"]["positive_f1"] >= 0.90
 
 

@@ -88,7 +88,7 @@ def test_smollm2_last_pooling_equals_llama_for_sequence_classification(tmp_path:
     # The library's own way of loading fewer layers: a smaller config; later layers' weights go unused.
     lib = LlamaForSequenceClassification.from_pretrained(folder, num_labels=len(LABELS), num_hidden_layers=layers)
     pad = ours.tokenizer.pad_token_id
-    lib.resize_token_embeddings(len(ours.tokenizer))
+    lib.resize_token_embeddings(len(ours.tokenizer), mean_resizing=False)  # the new row is copied from ours below
     with torch.no_grad():
         lib.model.embed_tokens.weight[pad] = ours.model.backbone.get_input_embeddings().weight[pad]
     lib.config.pad_token_id = pad

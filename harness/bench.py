@@ -24,7 +24,7 @@ import statistics
 import subprocess
 import sys
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -57,24 +57,25 @@ def training_flops(lengths: Sequence[int], params: int, layers: int, hidden: int
     return per_pass * epochs
 
 
-def padded_tokens(lengths: Sequence[int], batches: Sequence[Sequence[int]], *, multiple: int = 1,
-                  limit: int | None = None) -> int:
-    """Tokens processed when every batch (index lists into `lengths`) is padded to its longest row,
-    rounded up to `multiple` but not past `limit` (as harness.heads.pad_batch pads)."""
+def padded_tokens(lengths: Sequence[int], batches: Sequence[Sequence[int]],
+                  width: Callable[[int], int] | None = None) -> int:
+    """Tokens processed when every batch (index lists into `lengths`) is padded to its longest row, or to
+    `width(longest)` (e.g. harness.head_method.batch_width)."""
     total = 0
     for b in batches:
         if b:
             longest = max(lengths[i] for i in b)
-            rounded = -(-longest // multiple) * multiple
-            total += len(b) * (rounded if limit is None else max(longest, min(rounded, limit)))
+            total += len(b) * (width(longest) if width else longest)
     return total
 
 
-def matmul_flops_per_second(size: int = 2048, repeats: int = 5) -> float:
-    """Best of `repeats` fp32 `size x size` matrix products on torch's current threads, in FLOP/s (2 n^3 each)."""
+def matmul_flops_per_second(size: int = 2048, repeats: int = 5, dtype: str = "float32") -> float:
+    """Best of `repeats` `size x size` matrix products (fp32 unless `dtype` says otherwise) on torch's current
+    threads, in FLOP/s (2 n^3 each)."""
     import torch
 
-    a, b = torch.randn(size, size), torch.randn(size, size)
+    kind = getattr(torch, dtype)
+    a, b = torch.randn(size, size, dtype=kind), torch.randn(size, size, dtype=kind)
     a @ b  # warm-up: the first call allocates and picks kernels
     best = math.inf
     for _ in range(repeats):
@@ -124,17 +125,23 @@ def machine_info() -> dict[str, Any]:
     }
 
 
-def run_job(job: dict[str, Any], folder: Path, *, timeout: float = 3600.0) -> dict[str, Any]:
+def run_job(job: dict[str, Any], folder: Path, *, timeout: float = 3600.0, reuse: bool = False) -> dict[str, Any]:
     """Run one `harness.bench_jobs` job in a fresh Python process and return its result dict.
 
     A fresh process per contender keeps peak resident memory (ru_maxrss) apart and starts every
     contender from the same cold state. A failed job returns {"error": ...} rather than raising,
-    so one broken contender does not lose the rest of the benchmark.
+    so one broken contender does not lose the rest of the benchmark. With `reuse`, a result left
+    in `folder` by an earlier, interrupted benchmark for exactly this job is returned instead.
     """
     folder.mkdir(parents=True, exist_ok=True)
     spec = folder / f"{job['id']}.job.json"
     out = folder / f"{job['id']}.result.json"
-    spec.write_text(json.dumps(job, indent=2), encoding="utf-8")
+    text = json.dumps(job, indent=2)
+    if reuse and out.exists() and spec.exists() and spec.read_text(encoding="utf-8") == text:
+        kept: dict[str, Any] = json.loads(out.read_text(encoding="utf-8"))
+        if "error" not in kept:
+            return {**kept, "reused": True}
+    spec.write_text(text, encoding="utf-8")
     out.unlink(missing_ok=True)
     env = {**os.environ, "HF_HUB_OFFLINE": "1", "TOKENIZERS_PARALLELISM": "false"}
     started = time.perf_counter()
@@ -149,4 +156,5 @@ def run_job(job: dict[str, Any], folder: Path, *, timeout: float = 3600.0) -> di
         return {"error": f"exit {proc.returncode}: {tail[0]}", "wall_seconds": time.perf_counter() - started}
     result: dict[str, Any] = json.loads(out.read_text(encoding="utf-8"))
     result["wall_seconds"] = time.perf_counter() - started
+    out.write_text(json.dumps(result), encoding="utf-8")  # with its wall time, for a later reuse
     return result

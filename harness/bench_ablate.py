@@ -7,7 +7,10 @@ N (the first step pays for allocations; evaluation and checkpoints after the las
 outside the window). Variants that are not config settings are applied as small wrappers:
 - `pad_to_max_length`: the batch is padded on to train.max_length after the dynamic collate;
 - `host_sync_every_step`: the loss is read on the host (`float(loss)`) after every batch;
-- `per_tensor_adamw`: the optimizer is rebuilt without the fused kernel (torch's default on the CPU).
+- `per_tensor_adamw`: the optimizer is rebuilt without the fused kernel (torch's default on the CPU);
+- `exact_widths`: batches padded to their longest row exactly, not rounded up to PAD_MULTIPLE;
+- `attention_dropout_off`: attention-probability dropout set to 0 (not a harness setting; measured
+  because it decides whether torch's fused attention kernel runs).
 Run by scripts/bench.py through harness.bench_jobs, never by tests.
 """
 
@@ -24,7 +27,7 @@ from typing import Any
 import torch
 import torch.nn.functional as F
 
-__all__ = ["TRAIN_VARIANTS", "run_ablations", "train_variants"]
+__all__ = ["TRAIN_VARIANTS", "run_ablations", "set_attention_dropout", "train_variants"]
 
 # name -> (config overrides, wrapper name or None); compared against "base".
 TRAIN_VARIANTS: dict[str, tuple[dict[str, Any], str | None]] = {
@@ -34,7 +37,24 @@ TRAIN_VARIANTS: dict[str, tuple[dict[str, Any], str | None]] = {
     "threads = 2 x logical cores (oversubscribed)": ({"train.threads": 2 * (os.cpu_count() or 1)}, None),
     "loss read on the host every step": ({}, "host_sync_every_step"),
     "per-tensor AdamW (not fused)": ({}, "per_tensor_adamw"),
+    "exact batch widths (not rounded up to 8)": ({}, "exact_widths"),
+    "attention dropout off (proposal: fused attention kernel)": ({}, "attention_dropout_off"),
 }
+
+
+def set_attention_dropout(model: torch.nn.Module, p: float) -> int:
+    """Set the attention-probability dropout of every self-attention module; returns how many changed.
+
+    Why it matters on the CPU: torch's fused attention kernel takes no dropout, so with dropout on
+    every layer falls back to the unfused path, which stores the (batch, heads, seq, seq) weights.
+    """
+    changed = 0
+    for module in model.modules():
+        dropout = getattr(module, "dropout", None)
+        if type(module).__name__.endswith("SelfAttention") and isinstance(dropout, torch.nn.Dropout):
+            dropout.p = p
+            changed += 1
+    return changed
 
 
 def train_variants(settings: dict[str, Any]) -> dict[str, tuple[dict[str, Any], str | None]]:
@@ -65,7 +85,12 @@ def _wrapped(method: Any, wrapper: str | None, cfg: Any) -> Iterator[list[tuple[
     collate, loss, make_optimizer = method.collate, method.loss, loop.make_optimizer
 
     def recording_collate(items: Any) -> dict[str, torch.Tensor]:
-        batch = collate(items)
+        if wrapper == "exact_widths":
+            from harness.head_method import collate_encoded
+
+            batch = collate_encoded(items, method.tokenizer.pad_token_id, method.uses_type_ids)  # no limit: no rounding
+        else:
+            batch = collate(items)
         if wrapper == "pad_to_max_length":
             batch = _pad_right(batch, method.max_length, method.tokenizer.pad_token_id)
         records.append((len(items), sum(len(it) for it in items), int(batch["input_ids"].numel())))
@@ -82,6 +107,8 @@ def _wrapped(method: Any, wrapper: str | None, cfg: Any) -> Iterator[list[tuple[
         return torch.optim.AdamW(groups, lr=c.train.learning_rate, fused=False, foreach=False)
 
     method.collate = recording_collate
+    if wrapper == "attention_dropout_off":
+        set_attention_dropout(method.model, 0.0)
     if wrapper == "host_sync_every_step":
         method.loss = syncing_loss
     if wrapper == "per_tensor_adamw":

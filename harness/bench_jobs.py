@@ -63,6 +63,27 @@ def _model_facts(model: Any) -> dict[str, int]:
             "hidden": int(config.hidden_size), "parameters": sum(p.numel() for p in model.parameters())}
 
 
+def _apply_patches(job: dict[str, Any]) -> None:
+    """The memory ablations: one harness choice undone for this process (see scripts/bench.py)."""
+    from harness import head_method, train
+
+    if "pad_multiple" in job:  # batch widths not rounded up
+        head_method.PAD_MULTIPLE = int(job["pad_multiple"])
+    if job.get("heap") == "default":  # glibc's own, adaptive mmap threshold
+        train.release_large_blocks = lambda threshold=0: False  # type: ignore[misc]
+    if job.get("attention_dropout") is not None:  # not a harness setting: measured as a proposal
+        from harness.bench_ablate import set_attention_dropout
+
+        load = head_method.load_backbone
+
+        def load_without(*args: Any, **kwargs: Any) -> Any:
+            backbone = load(*args, **kwargs)
+            set_attention_dropout(backbone.model, float(job["attention_dropout"]))
+            return backbone
+
+        head_method.load_backbone = load_without  # type: ignore[assignment]
+
+
 def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     """One harness `head` run; the throughput is the run's own `cost.train_examples_per_second`."""
     import torch
@@ -75,8 +96,7 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     from harness.data import load_task
     from harness.runner import execute_run
 
-    if "pad_multiple" in job:  # the memory ablation: batch widths not rounded up
-        head_method.PAD_MULTIPLE = int(job["pad_multiple"])
+    _apply_patches(job)
     with tempfile.TemporaryDirectory(prefix="bench-run-") as tmp:
         cfg = build_config(job, Path(tmp))
         folder = execute_run(cfg, log=lambda _line: None)
@@ -86,9 +106,9 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     source, _ = resolve_source(cfg.model.checkpoint)
     lengths = token_lengths(AutoTokenizer.from_pretrained(str(source)), data.train.texts, cfg.train.max_length)
     t = cfg.train
-    padded = sum(padded_tokens(lengths, epoch_batches(lengths, t.batch_size, mode=t.batching,
-                                                      pool_batches=t.pool_batches, seed=t.seed, epoch=e),
-                               multiple=head_method.PAD_MULTIPLE, limit=t.max_length)
+    padded = sum(padded_tokens(lengths, epoch_batches(lengths, t.batch_size, mode=t.batching, pool_batches=t.pool_batches,
+                                                      seed=t.seed, epoch=e, labels=data.train.labels),
+                               width=lambda n: head_method.batch_width(n, t.max_length))
                  for e in range(int(t.epochs)))
     cost = metrics["cost"]
     return {"contender": "harness", "examples_per_second": cost["train_examples_per_second"],

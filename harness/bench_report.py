@@ -51,7 +51,7 @@ def _training(results: list[dict[str, Any]], peak: float) -> list[dict[str, Any]
     groups: dict[tuple[str, str], dict[str, list[dict[str, Any]]]] = {}
     for item in results:
         job, res = item["job"], item["result"]
-        if job["kind"] in ("harness", "reference") and "error" not in res:
+        if job["kind"] in ("harness", "reference") and "error" not in res and "memory_variant" not in job:
             key = (job["model"], job["task_name"])
             groups.setdefault(key, {"harness": [], "reference": []})[job["kind"]].append({**res, "seed": job["seed"]})
     rows = []
@@ -65,6 +65,21 @@ def _training(results: list[dict[str, Any]], peak: float) -> list[dict[str, Any]
         rows.append({"model": model, "task": task, "seeds": sorted(by_seed), "harness": h, "reference": r,
                      "throughput_ratio": median(ratios), "throughput_ratios": ratios,
                      "accuracy_gap_points": 100 * (h["accuracy_mean"] - r["accuracy_mean"])})
+    return rows
+
+
+def _memory(results: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Memory-ablation runs next to the plain harness run they copy (same task, seed and settings)."""
+    rows = []
+    for item in results:
+        job, res = item["job"], item["result"]
+        if "memory_variant" not in job:
+            continue
+        base = next((x["result"] for x in results if x["job"]["id"] == job["id"].split("-", 2)[2]), None)
+        rows.append({"variant": job["memory_variant"], "task": job["task_name"], "seed": job["seed"], **{
+            k: res.get(k) for k in ("peak_rss_mb", "examples_per_second", "accuracy", "error")},
+            "base_peak_rss_mb": base and base.get("peak_rss_mb"),
+            "base_examples_per_second": base and base.get("examples_per_second")})
     return rows
 
 
@@ -115,13 +130,18 @@ def summarise(results: list[dict[str, Any]], *, matmul: Sequence[float], machine
     targets = [_target(name, values[name], *TARGETS[name]) for name in TARGETS] + targets
     return {"mode": mode, "seconds": seconds, "machine": {**machine, "matmul_flops_per_second": list(matmul),
                                                            "matmul_peak_flops_per_second": peak},
-            "harness_settings": settings, "targets": targets, "training": training, "scoring": scoring,
+            "harness_settings": settings, "targets": targets, "training": training, "memory": _memory(results),
+            "scoring": scoring,
             "ablations": ablations, "raw": results}
 
 
 def _target(name: str, value: float | None, threshold: float, higher: bool, unit: str) -> dict[str, Any]:
     return {"target": name, "value": value, "threshold": threshold,
             "verdict": target_verdict(value, threshold, higher_is_better=higher, unit=unit)}
+
+
+def _num(value: float | None, fmt: str) -> str:
+    return "-" if value is None else fmt.format(value)
 
 
 def _table(header: Sequence[str], rows: Sequence[Sequence[Any]]) -> list[str]:
@@ -137,7 +157,9 @@ def render_markdown(report: dict[str, Any]) -> str:
            f"Machine: {m['cpu_model']}, {m['physical_cores']} physical / {m['logical_cores']} logical cores, "
            f"{m['memory_gb']} GB, torch {m['torch']} on {m['torch_threads']} threads; load average "
            f"{m['load_average']} at the start, {m.get('load_average_end')} at the end. fp32 matmul "
-           f"(2048 x 2048, best of the run): {m['matmul_peak_flops_per_second'] / 1e9:.1f} GFLOP/s.", "",
+           f"(2048 x 2048, best of the run): {m['matmul_peak_flops_per_second'] / 1e9:.1f} GFLOP/s; bf16 matmul "
+           f"{m.get('bf16_matmul_flops_per_second', float('nan')) / 1e9:.1f} GFLOP/s (CPU bf16 instructions: "
+           f"{'yes' if m.get('cpu_bf16') else 'no'}).", "",
            "Harness settings beyond its defaults: " + ", ".join(f"`{k}={v}`" for k, v in report["harness_settings"].items())
            + " (each measured switched back below).", "", "## Targets", ""]
     out += _table(["target", "value", "verdict"], [(t["target"], "-" if t["value"] is None else f"{t['value']:.2f}",
@@ -159,10 +181,23 @@ def render_markdown(report: dict[str, Any]) -> str:
             "## Utilisation (real tokens only)", "",
             "FLOPs = sum over examples of 6 N n + 12 L n^2 d (N non-embedding parameters, n real tokens, L layers, "
             "d width; Kaplan et al. 2020 section 2.1, Hoffmann et al. 2022 appendix F), per epoch.", ""]
-    out += _table(["model", "task", "contender", "TFLOPs", "achieved GFLOP/s", "of fp32 matmul peak"],
+    bf16_peak = m.get("bf16_matmul_flops_per_second")
+    out += _table(["model", "task", "contender", "TFLOPs", "achieved GFLOP/s", "of fp32 matmul peak",
+                   "of bf16 matmul peak"],
                   [(r["model"], r["task"], who, f"{r[who]['training_flops'] / 1e12:.2f}",
-                    f"{r[who]['achieved_flops_per_second'] / 1e9:.1f}", f"{r[who]['matmul_fraction']:.0%}")
+                    f"{r[who]['achieved_flops_per_second'] / 1e9:.1f}", f"{r[who]['matmul_fraction']:.0%}",
+                    f"{r[who]['achieved_flops_per_second'] / bf16_peak:.0%}" if bf16_peak else "-")
                    for r in report["training"] for who in ("harness", "reference")])
+    out += ["The harness trains under bf16 autocast (its matrix products run in bf16); the target is stated "
+            "against the fp32 peak, the bf16 column shows the headroom that is left.", ""]
+    if report.get("memory"):
+        out += ["## Memory ablations (one harness run each, its own process; base = the same run unchanged)", ""]
+        out += _table(["variant", "task, seed", "peak MB", "base peak MB", "ex/s", "base ex/s", "accuracy %"],
+                      [(r["variant"], f"{r['task']}, {r['seed']}", _num(r["peak_rss_mb"], "{:.0f}"),
+                        _num(r["base_peak_rss_mb"], "{:.0f}"), _num(r["examples_per_second"], "{:.1f}"),
+                        _num(r["base_examples_per_second"], "{:.1f}"),
+                        _num(r["accuracy"] and 100 * r["accuracy"], "{:.2f}") if not r.get("error") else r["error"])
+                       for r in report["memory"]])
     s = report["scoring"]
     if s:
         out += [f"## Scoring (SmolLM2-135M, {s['layers']} layers, {s['prompts']} prompts of "

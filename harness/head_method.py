@@ -27,14 +27,24 @@ from harness.errors import HarnessError
 from harness.heads import ClassifierHead, HeadModel, build_pooling, pad_batch, resolve_pooling
 from harness.methods import Encoded, register_method
 
-__all__ = ["PAD_MULTIPLE", "HeadMethod", "class_weights", "collate_encoded", "count_parameters", "encode_texts", "predict_batches"]
+__all__ = ["PAD_MULTIPLE", "ROUND_ABOVE", "HeadMethod", "batch_width", "class_weights", "collate_encoded",
+           "count_parameters", "encode_texts", "predict_batches"]
 
 _EMBEDDING_PARTS = {"embeddings", "wte", "wpe", "embed_tokens", "embed_positions", "shared"}
-# Batch widths are rounded up to a multiple of this. Why: a width for every length from 1 to max_length
-# means a new set of matrix shapes nearly every batch; the CPU kernel library keeps the kernels it builds
-# per shape, and the allocator splits and keeps blocks of every size. Measured on MiniLM / SMS spam
-# (scripts/bench.py, 2 epochs): peak memory 2.0 GB -> 1.6 GB at the same speed, for ~7 % more padding.
+# Batches wider than ROUND_ABOVE tokens are padded on to a multiple of PAD_MULTIPLE. Why: a width for every
+# length up to max_length means new matrix shapes nearly every batch; the CPU kernel library keeps the
+# kernels it builds per shape, and the allocator keeps blocks of every size. Measured on MiniLM / SMS spam
+# (scripts/bench.py, 2 epochs): peak memory about 2.0 GB -> 1.6 GB at the same speed. Short batches stay
+# exact: their activations are small, and rounding 13 tokens up to 16 would cost a fifth more work.
 PAD_MULTIPLE = 8
+ROUND_ABOVE = 32
+
+
+def batch_width(longest: int, limit: int) -> int:
+    """The width a batch is padded to: its longest row, rounded up to PAD_MULTIPLE above ROUND_ABOVE, within `limit`."""
+    if longest <= ROUND_ABOVE:
+        return longest
+    return max(longest, min(-(-longest // PAD_MULTIPLE) * PAD_MULTIPLE, limit))
 
 
 def class_weights(spec: str | dict[str, float] | None, train_labels: Sequence[int],
@@ -131,10 +141,10 @@ def encode_texts(tokenizer: Any, texts: Sequence[Any], labels: Sequence[int], ma
 
 def collate_encoded(items: Sequence[Encoded], pad_id: int, type_ids: bool,
                     limit: int | None = None) -> dict[str, torch.Tensor]:
-    """A right-padded batch with labels; with a `limit` (max_length) its width is rounded up to PAD_MULTIPLE."""
+    """A right-padded batch with labels; given `limit` (max_length), its width follows `batch_width`."""
     types = [it.extra["token_type_ids"] for it in items] if type_ids else None  # type: ignore[index]
-    multiple = PAD_MULTIPLE if limit is not None else 1  # without a limit, rounding could pass the positions
-    batch = pad_batch([it.input_ids for it in items], pad_id, type_ids=types, multiple=multiple, limit=limit)
+    width = batch_width(max(len(it) for it in items), limit) if limit is not None else None
+    batch = pad_batch([it.input_ids for it in items], pad_id, type_ids=types, width=width)
     batch["labels"] = torch.tensor([it.label for it in items], dtype=torch.long)
     return batch
 
@@ -204,7 +214,7 @@ class HeadMethod:
         return encode_texts(self.tokenizer, texts, labels, self.max_length, self.uses_type_ids)
 
     def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
-        """Right-pad to the longest example of the batch (rounded up to PAD_MULTIPLE, within max_length)."""
+        """Right-pad to the longest example of the batch (wide batches rounded up, see `batch_width`)."""
         return collate_encoded(items, self.tokenizer.pad_token_id, self.uses_type_ids, limit=self.max_length)
 
     def logits(self, batch: dict[str, torch.Tensor]) -> torch.Tensor:

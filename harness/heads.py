@@ -159,15 +159,12 @@ class HeadModel(nn.Module):
 
 
 def pad_batch(ids: Sequence[Sequence[int]], pad_id: int, *, side: str = "right",
-              type_ids: Sequence[Sequence[int]] | None = None, multiple: int = 1,
-              limit: int | None = None) -> dict[str, torch.Tensor]:
-    """Pad token id lists to the longest one, rounded up to `multiple` but never past `limit`.
+              type_ids: Sequence[Sequence[int]] | None = None, width: int | None = None) -> dict[str, torch.Tensor]:
+    """Pad token id lists to the longest one (or to `width` when that is wider).
 
     Returns input_ids, attention_mask (and token_type_ids), each (batch, width).
     """
-    longest = max(len(x) for x in ids)
-    rounded = -(-longest // multiple) * multiple
-    width = rounded if limit is None else max(longest, min(rounded, limit))
+    width = max(max(len(x) for x in ids), width or 0)
     input_ids = torch.full((len(ids), width), pad_id, dtype=torch.long)  # (batch, seq)
     mask = torch.zeros((len(ids), width), dtype=torch.long)
     types = torch.zeros((len(ids), width), dtype=torch.long) if type_ids is not None else None

@@ -3,6 +3,7 @@
     python scripts/bench.py                 # full: 2,000 train / ~1,000 test, 2 epochs, 3 seeds
     python scripts/bench.py --quick         # smoke run: a few hundred examples, 1 seed
     python scripts/bench.py --threads 1     # force the thread count of every contender
+    python scripts/bench.py --resume        # after an interruption: keep the jobs that finished
 
 Contenders run one after another in fresh subprocesses (so peak memory is per contender),
 alternating A B / B A from one seed to the next so that machine drift hits both alike. Writes
@@ -33,10 +34,10 @@ TASKS = {
 }
 # The harness settings under test (beyond its defaults); each is also measured switched back in the ablations.
 HARNESS_SETTINGS = {"train.bf16": True, "method.freeze": "embeddings"}
-FULL = {"train_size": 2000, "max_rows": None, "epochs": 2, "seeds": (13, 14, 15),
+FULL: dict[str, Any] = {"train_size": 2000, "max_rows": None, "epochs": 2, "seeds": (13, 14, 15),
         "decoder": {"layers": 4, "train_size": 800, "max_rows": None, "epochs": 2},
         "ablation_examples": 320, "scoring": {"prompts": 64, "repeats": 2, "layers": None}}
-QUICK = {"train_size": 160, "max_rows": 160, "epochs": 1, "seeds": (13,),
+QUICK: dict[str, Any] = {"train_size": 160, "max_rows": 160, "epochs": 1, "seeds": (13,),
          "decoder": {"layers": 2, "train_size": 96, "max_rows": 96, "epochs": 1},
          "ablation_examples": 64, "scoring": {"prompts": 16, "repeats": 2, "layers": 4}}
 
@@ -60,10 +61,27 @@ def training_jobs(plan: dict[str, Any], threads: int | None, decoder_folder: Pat
     return jobs
 
 
+# Memory ablations: one harness run on sms-spam (first seed) with one choice undone, each in its own process.
+MEMORY_VARIANTS: dict[str, dict[str, Any]] = {
+    "exact batch widths (not rounded up to 8)": {"pad_multiple": 1},
+    "glibc's adaptive heap (no fixed mmap threshold)": {"heap": "default"},
+    "attention dropout off (proposal, not a harness setting)": {"attention_dropout": 0.0},
+}
+
+
+def memory_jobs(jobs: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Copies of the first MiniLM sms-spam harness job, each with one MEMORY_VARIANTS patch."""
+    base = next(j for j in jobs if j["kind"] == "harness" and j["model"] == "minilm-l6" and j["task_name"] == "sms-spam")
+    return [{**base, **patch, "kind": "harness", "memory_variant": name, "id": f"memory-{i}-{base['id']}"}
+            for i, (name, patch) in enumerate(MEMORY_VARIANTS.items(), 1)]
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--quick", action="store_true", help="a smoke run: few examples, one seed")
     parser.add_argument("--out", default=str(REPO / "bench_out"), help="output folder (default bench_out/)")
+    parser.add_argument("--resume", action="store_true",
+                        help="keep the results of jobs an interrupted run of the same command finished")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads for every contender (default: harness = physical cores, "
                              "reference = torch's default)")
@@ -96,19 +114,21 @@ def main() -> int:
     scoring = {"kind": "scoring", "id": "scoring-smollm2-135m", "checkpoint": "asset:smollm2-135m",
                "task": {**TASKS["question-types"][0]}, "batch_size": 32, "threads": args.threads,
                **plan["scoring"]}
-    jobs += [ablation, scoring]
+    jobs += [*memory_jobs(jobs), ablation, scoring]
     results = []
     for n, job in enumerate(jobs, 1):
         print(f"[{n}/{len(jobs)}] {job['id']} ...", end=" ", flush=True)
-        result = run_job(job, jobs_dir)
+        result = run_job(job, jobs_dir, reuse=args.resume)
         results.append({"job": job, "result": result})
         shown = result.get("error") or (f"{result['examples_per_second']:.1f} ex/s, acc {result['accuracy']:.4f}, "
                                         f"peak {result['peak_rss_mb']:.0f} MB" if "accuracy" in result else "done")
-        print(f"{shown} ({result['wall_seconds']:.0f} s)", flush=True)
+        print(f"{shown} ({result['wall_seconds']:.0f} s{', kept from before' if result.get('reused') else ''})",
+              flush=True)
         if n % 6 == 0:
             matmul.append(matmul_flops_per_second())  # the peak is the best moment of the whole run
     matmul.append(matmul_flops_per_second())
     info["load_average_end"] = machine_info()["load_average"]
+    info["bf16_matmul_flops_per_second"] = max(matmul_flops_per_second(dtype="bfloat16") for _ in range(2))
     report = summarise(results, matmul=matmul, machine=info, settings=HARNESS_SETTINGS,
                        mode="quick" if args.quick else "full", seconds=time.perf_counter() - started)
     out.mkdir(parents=True, exist_ok=True)

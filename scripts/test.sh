@@ -11,5 +11,5 @@ fi
 . .venv/bin/activate
 export HF_HUB_OFFLINE=1 TRANSFORMERS_OFFLINE=1 HF_DATASETS_OFFLINE=1
 ruff check harness tests scripts
-mypy harness
+mypy harness scripts
 python -m pytest -q -ra --durations=15 "$@"

@@ -73,6 +73,33 @@ def test_padded_tokens_count_every_batch_at_its_longest_row():
     assert padded_tokens(lengths, [[0], [1], [2], [3]]) == sum(lengths)  # no padding at all
 
 
+def test_padded_tokens_follow_the_widths_of_the_head_collate():
+    from harness.head_method import batch_width, collate_encoded
+    from harness.methods import Encoded
+
+    # The count must equal the tensor sizes the head method's own collate produces (max_length 40).
+    lengths = [3, 5, 2, 37, 12, 1, 39]
+    batches = [[0, 1], [2, 3, 4], [5], [6]]
+    items = [Encoded(tuple([7] * n), 0) for n in lengths]
+    expected = sum(collate_encoded([items[i] for i in b], 0, False, limit=40)["input_ids"].numel() for b in batches)
+    counted = padded_tokens(lengths, batches, width=lambda n: batch_width(n, 40))
+    assert counted == expected == 2 * 5 + 3 * 40 + 1 * 1 + 1 * 40  # 37 and 39 round up to 40
+
+
+def test_attention_dropout_switch_reaches_every_self_attention_layer(toy_paths: dict[str, Path]):
+    from transformers import AutoModel
+
+    from harness.bench_ablate import set_attention_dropout
+
+    # The library's BERT reads each layer's attention dropout from that layer's own nn.Dropout at run time.
+    model = AutoModel.from_pretrained(toy_paths["encoder"])
+    assert set_attention_dropout(model, 0.0) == model.config.num_hidden_layers
+    probs = [m.dropout.p for m in model.modules() if type(m).__name__.endswith("SelfAttention")]
+    assert probs == [0.0] * model.config.num_hidden_layers
+    assert model.config.hidden_dropout_prob > 0 and any(
+        isinstance(m, torch.nn.Dropout) and m.p == model.config.hidden_dropout_prob for m in model.modules())
+
+
 def test_target_verdicts_say_by_how_much_a_target_is_missed():
     assert target_verdict(2.31, 2.0, higher_is_better=True, unit="x") == "met (2.31x >= 2.00x)"
     assert target_verdict(1.88, 2.0, higher_is_better=True, unit="x") == "missed by 0.12x (1.88x < 2.00x)"

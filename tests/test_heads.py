@@ -159,3 +159,37 @@ def test_balanced_class_weights_match_scikit_learn():
         class_weights({"zz": 2.0}, labels, names)
     with pytest.raises(HarnessError, match="no training rows"):
         class_weights("balanced", [0, 0, 1], names)
+
+
+@pytest.mark.parametrize("kind", ["encoder", "decoder"])
+def test_wider_batches_change_no_logits(toy_paths, kind):
+    # Reference: the library's own classifier on the exactly padded batch (BERT pools [CLS] through its
+    # pooler, GPT-2 the last non-pad token). Padding a batch wider, as the head collate does for wide
+    # batches (harness.head_method.batch_width), only adds masked positions: the logits must not move.
+    tok = AutoTokenizer.from_pretrained(toy_paths[kind])
+    ids = [tok(t)["input_ids"] for t in TEXTS]
+    longest = max(map(len, ids))
+    exact = pad_batch(ids, tok.pad_token_id)
+    wide = pad_batch(ids, tok.pad_token_id, width=longest + 5)
+    assert exact["input_ids"].shape[1] == longest and wide["input_ids"].shape[1] == longest + 5
+    assert pad_batch(ids, tok.pad_token_id, width=2)["input_ids"].shape[1] == longest  # never cuts a row
+    if kind == "encoder":
+        lib = BertForSequenceClassification.from_pretrained(toy_paths[kind], num_labels=3).eval()
+        ours = HeadModel(lib.bert, FirstPooling(lib.bert.pooler), ClassifierHead(lib.config.hidden_size, 3, dropout=0.0,
+                                                                                  seed=0), "encoder").eval()
+        ours.head.linear.load_state_dict(lib.classifier.state_dict())
+    else:
+        lib, ours = _gpt2_pair(toy_paths[kind])
+    with torch.inference_mode():
+        expected = lib(input_ids=exact["input_ids"], attention_mask=exact["attention_mask"]).logits
+        got = ours(wide["input_ids"], wide["attention_mask"])
+    torch.testing.assert_close(got, expected, atol=1e-5, rtol=0)
+
+
+def test_batch_width_rounds_only_wide_batches_and_never_passes_the_limit():
+    from harness.head_method import PAD_MULTIPLE, ROUND_ABOVE, batch_width
+
+    assert batch_width(13, 64) == 13 and batch_width(ROUND_ABOVE, 128) == ROUND_ABOVE  # short batches stay exact
+    assert batch_width(ROUND_ABOVE + 1, 128) == -(-(ROUND_ABOVE + 1) // PAD_MULTIPLE) * PAD_MULTIPLE
+    assert all(batch_width(n, 128) % PAD_MULTIPLE == 0 for n in range(ROUND_ABOVE + 1, 129))
+    assert batch_width(99, 100) == 100 and batch_width(100, 100) == 100  # the limit (max_length) caps it

@@ -5,6 +5,7 @@ from __future__ import annotations
 import csv
 import json
 import math
+import random
 from collections import Counter
 from pathlib import Path
 
@@ -85,6 +86,23 @@ def test_grouped_batches_mix_classes_when_length_tracks_the_label():
         assert 0 < sum(first_half) < 200  # a global sort would make this half all short
         shares.append(sum(first_half) / 200)
     assert 0.4 < sum(shares) / len(shares) < 0.6  # short examples spread evenly over the epoch
+
+
+def test_grouped_batches_given_labels_hold_every_class_and_still_pad_less_than_random():
+    # Spam-like data: the minority class (1) runs long. Grouped by length alone, pools yield one-class
+    # batches; given the labels, every batch must hold each class in about the pool's proportion.
+    rng = random.Random(0)
+    labels = [1 if i % 8 == 0 else 0 for i in range(800)]  # 12.5 % minority, as in SMS spam
+    lengths = [rng.randint(25, 60) if y else rng.randint(5, 40) for y in labels]
+    kw = {"mode": "grouped", "pool_batches": 8, "seed": 1, "epoch": 0}
+    plain = epoch_batches(lengths, 16, **kw)
+    mixed = epoch_batches(lengths, 16, labels=labels, **kw)
+    assert any(len({labels[i] for i in b}) == 1 for b in plain)  # the failure this guards against
+    assert sorted(i for b in mixed for i in b) == list(range(800))
+    assert all(1 <= sum(labels[i] for i in b) <= 3 for b in mixed)  # 2 of 16 expected in each batch
+    assert mixed == epoch_batches(lengths, 16, labels=labels, **kw)  # reproducible
+    pad = lambda bs: sum(max(lengths[i] for i in b) * len(b) for b in bs)  # noqa: E731
+    assert pad(mixed) < pad(epoch_batches(lengths, 16, mode="random", pool_batches=8, seed=1, epoch=0))
 
 
 # ----- optimiser and schedule

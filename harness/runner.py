@@ -26,7 +26,8 @@ import re
 import shutil
 import tempfile
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -49,7 +50,7 @@ from harness.runs import (
     write_status,
 )
 
-__all__ = ["encode_split", "execute_run", "load_exported", "peak_rss_mb", "predict"]
+__all__ = ["encode_split", "execute_run", "findings_once", "load_exported", "peak_rss_mb", "predict"]
 
 logger = logging.getLogger(__name__)
 
@@ -157,6 +158,22 @@ def _predictions(split: Split, probs: Any, label_names: Sequence[str]) -> str:
     return "\n".join(lines) + "\n"
 
 
+# While a sweep runs, the data findings already logged (each is shown once per sweep, not once per run;
+# every run's data.json and report still carry all of them).
+_shown_findings: set[str] | None = None
+
+
+@contextmanager
+def findings_once() -> Iterator[None]:
+    """Within this block, log each data-audit finding the first time only (harness.sweep runs under it)."""
+    global _shown_findings
+    before, _shown_findings = _shown_findings, set()
+    try:
+        yield
+    finally:
+        _shown_findings = before
+
+
 def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, force: bool = False,
                 log: Callable[[str], Any] = print, on_step: Callable[[int], None] | None = None) -> Path:
     """Run `cfg` (one config, one seed) and return its folder; see the module docstring for the rules.
@@ -202,7 +219,10 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
                               {**environment_info(), "torch_threads": threads, "processes": processes})
             atomic_write_json(folder / "data.json", {**data.fingerprint(), "audit": audit})
             for finding in audit["findings"]:
-                logger.warning("data: %s", finding)
+                if _shown_findings is None or finding not in _shown_findings:
+                    logger.warning("data: %s", finding)
+                if _shown_findings is not None:
+                    _shown_findings.add(finding)
         result = None
         if method.trains:
             result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume,

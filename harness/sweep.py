@@ -241,13 +241,16 @@ def run_sweep(
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
     states: dict[int, str] = {}
     memory: dict[int, dict[str, float | None]] = {}
+    from harness.runner import findings_once
+
     try:
-        for n, i in enumerate(picked):
-            tag = f"[{n + 1}/{len(picked)}] #{i} {run_id(runs[i])}:"
-            states[i], ran = _run_one(runs[i], start, tag, log)
-            if ran:
-                memory[i] = _memory_after()
-            _write_index(folder, meta, runs, memory)
+        with findings_once():  # a data finding is the same for every run of the grid: say it once
+            for n, i in enumerate(picked):
+                tag = f"[{n + 1}/{len(picked)}] #{i} {run_id(runs[i])}:"
+                states[i], ran = _run_one(runs[i], start, tag, log)
+                if ran:
+                    memory[i] = _memory_after()
+                _write_index(folder, meta, runs, memory)
     finally:  # a kill mid-run still leaves an up-to-date index
         records = _write_index(folder, meta, runs, memory)
     failed = [i for i in picked if states.get(i) != "finished"]

@@ -359,3 +359,20 @@ def test_train_size_sweep_draws_a_data_efficiency_curve(tmp_path: Path) -> None:
         values = [json.loads((Path(r["path"]) / "metrics.json").read_text())["metrics"]["macro_f1"]
                   for r in index["runs"] if r["method"] == kind and r["train_size"] == int(row["train_examples"])]
         assert len(values) == 2 and float(row["macro_f1_mean"]) == pytest.approx(float(np.mean(values)))
+
+
+def test_a_data_finding_is_logged_once_per_sweep_but_kept_in_every_run(tmp_path: Path,
+                                                                       caplog: pytest.LogCaptureFixture) -> None:
+    data = tmp_path / "data"
+    shutil.copytree(FERRY, data)
+    train = data / "train.csv"
+    rows = train.read_text(encoding="utf-8").splitlines()
+    train.write_text("\n".join([*rows, rows[1].replace("fm-train-0001", "fm-train-dup")]) + "\n", encoding="utf-8")
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2]\n", data=data, rows=400)
+    with caplog.at_level("WARNING", logger="harness"):
+        assert sweep_command(path, [], compare=False) == 0
+    shown = [r.getMessage() for r in caplog.records if r.getMessage().startswith("data: ")]
+    assert len(shown) == len(set(shown)) >= 1  # the repeated training text is reported, once
+    for r in expand_sweep(load_config(path)):
+        findings = json.loads((tmp_path / "runs" / "ferry" / run_id(r) / "data.json").read_text())["audit"]["findings"]
+        assert set(shown) <= {f"data: {f}" for f in findings}  # each run still records it

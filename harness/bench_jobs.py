@@ -71,17 +71,6 @@ def _apply_patches(job: dict[str, Any]) -> None:
         head_method.PAD_MULTIPLE = int(job["pad_multiple"])
     if job.get("heap") == "default":  # glibc's own, adaptive mmap threshold
         train.release_large_blocks = lambda threshold=0: False  # type: ignore[misc]
-    if job.get("attention_dropout") is not None:  # not a harness setting: measured as a proposal
-        from harness.bench_ablate import set_attention_dropout
-
-        load = head_method.load_backbone
-
-        def load_without(*args: Any, **kwargs: Any) -> Any:
-            backbone = load(*args, **kwargs)
-            set_attention_dropout(backbone.model, float(job["attention_dropout"]))
-            return backbone
-
-        head_method.load_backbone = load_without  # type: ignore[assignment]
 
 
 def run_harness(job: dict[str, Any]) -> dict[str, Any]:

@@ -203,6 +203,8 @@ def _check_values(cfg: Config, where: _Where) -> None:
     if isinstance(t.text, tuple):
         need(t.text[0] != t.text[1], "task.text", "two different columns", list(t.text))
     need(cfg.model.layers is None or cfg.model.layers >= 1, "model.layers", "at least 1 or null", cfg.model.layers)
+    need(cfg.model.attention_dropout is None or 0.0 <= cfg.model.attention_dropout < 1.0, "model.attention_dropout",
+         "in [0, 1) or null", cfg.model.attention_dropout)
     need(m.dropout is None or 0.0 <= m.dropout < 1.0, "method.dropout", "in [0, 1) or null", m.dropout)
     need(0.0 <= m.label_smoothing < 1.0, "method.label_smoothing", "in [0, 1)", m.label_smoothing)
     if isinstance(m.class_weights, str):

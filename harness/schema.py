@@ -64,6 +64,9 @@ class ModelConfig:
     layers: int | None = _doc("keep only the first N transformer layers (fast tests); null = all", None)
     trust_remote_code: bool = _doc("run model code shipped with the checkpoint (off: unsafe)", False)
     allow_pickle: bool = _doc("accept pickle-based weight files (.bin/.pt); off: safetensors/GGUF only", False)
+    attention_dropout: float | None = _doc(
+        "dropout on the attention weights while training; null = the checkpoint's own (0 saves memory, see README)", None
+    )
 
 
 @dataclass(frozen=True)

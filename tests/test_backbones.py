@@ -151,3 +151,19 @@ def test_real_assets_load_cut_to_two_layers(name, family):
     with torch.inference_mode():
         hidden = backbone.model(**ids).last_hidden_state
     assert hidden.shape[-1] == backbone.config.hidden_size and torch.isfinite(hidden).all()
+
+
+@pytest.mark.parametrize("kind, key", [("encoder", "attention_probs_dropout_prob"), ("decoder", "attn_pdrop")])
+def test_attention_dropout_reaches_the_attention_modules(kind, key):
+    # The library's own config attributes (BertConfig.attention_probs_dropout_prob, GPT2Config.attn_pdrop)
+    # build each layer's attention dropout; the fused attention kernel needs it at 0 (torch SDPA docs).
+    plain = load_backbone(ModelConfig(checkpoint=f"toy:{kind}"), for_lm=False)
+    off = load_backbone(ModelConfig(checkpoint=f"toy:{kind}", attention_dropout=0.0), for_lm=False)
+    assert getattr(plain.model.config, key) > 0 and getattr(off.model.config, key) == 0.0
+    def attention_rates(model):
+        return [m.p for name, m in model.named_modules()
+                if isinstance(m, torch.nn.Dropout) and name.endswith(("attn.attn_dropout", "attention.self.dropout"))]
+
+    assert attention_rates(plain.model) and set(attention_rates(plain.model)) == {getattr(plain.model.config, key)}
+    assert len(attention_rates(off.model)) == plain.model.config.num_hidden_layers
+    assert set(attention_rates(off.model)) == {0.0}

@@ -6,7 +6,7 @@ existing run folder is byte for byte and mtime for mtime what it was before (sna
 
 Count, with the cases of earlier test files (each parametrized case is one bad input):
 
-Bad configs: 45 earlier + 20 here = 65
+Bad configs: 45 earlier + 22 here = 67
   tests/test_config.py::test_bad_config_names_key_and_line (19: misspelt key, bad pooling, bad kind,
     batch_size 0, non-number epochs, list label, task.name ../../x, layrs, metods, max_length 4,
     float seed, repeated pair column, unknown metric, ci 2, lora r 0, sweep misspelt key,
@@ -23,7 +23,7 @@ Bad configs: 45 earlier + 20 here = 65
   tests/test_sweep.py::test_bad_sweep_key_is_a_config_error_naming_it (5)
   tests/test_sweep.py::test_arms_carry_settings_together_and_cross_the_grid (2: unknown key, batch_size 0)
   tests/test_sweep.py::test_repeated_combination_is_an_error (1)
-  here: test_bad_config_through_the_cli (15), test_pickle_weights_need_allow_pickle (1),
+  here: test_bad_config_through_the_cli (17), test_pickle_weights_need_allow_pickle (1),
     test_task_name_cannot_leave_the_output_folder (1),
     test_a_link_cannot_take_the_run_out_of_the_output_folder (1), test_yaml_tags_construct_nothing (1),
     test_sweep_key_that_is_not_a_config_key (1)
@@ -183,6 +183,9 @@ CONFIG_CASES: list[tuple[str, dict[str, Any], list[str], str | None]] = [
     ("unknown model type", {"checkpoint": "UNKNOWN"}, ["wobble-net", "cannot be read"], "checkpoint:"),
     ("checkpoint is a plain file", {"checkpoint": "FILE"}, ["not a .gguf file"], "checkpoint:"),
     ("batch size 0", {"set": ["train.batch_size=0"]}, ["'train.batch_size'", "at least 1, got 0"], None),
+    ("attention dropout 1", {"set": ["model.attention_dropout=1"]}, ["'model.attention_dropout'", "in [0, 1)"], None),
+    ("attention dropout on T5", {"checkpoint": "toy:encoder-decoder", "set": ["model.attention_dropout=0"]},
+     ["model.attention_dropout", "T5Config", "has no attention-dropout setting", "remove the key"], None),
     ("eval batch size 0", {"eval_batch": 0}, ["'eval.batch_size'", "at least 1, got 0"], "batch_size: 0"),
     ("label words for a label the data lacks",
      {"checkpoint": "toy:decoder", "method": f"kind: next_token\nlabel_words: {LABEL_WORDS}, wobble: odd}}"},

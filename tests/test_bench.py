@@ -109,7 +109,8 @@ def test_target_verdicts_say_by_how_much_a_target_is_missed():
 
 
 def _run(kind: str, seed: int, eps: float, acc: float) -> dict:
-    job = {"kind": kind, "model": "minilm-l6", "task_name": "sms-spam", "seed": seed}
+    job = {"kind": kind, "model": "minilm-l6", "task_name": "sms-spam", "seed": seed,
+           "id": f"{kind}-minilm-l6-sms-spam-s{seed}"}
     result = {"examples_per_second": eps, "accuracy": acc, "macro_f1": acc, "peak_rss_mb": 900.0 + seed,
               "train_seconds": 100.0, "lengths": [10, 20], "real_tokens": 45, "padded_tokens": 60, "torch_threads": 2,
               "train_examples": 2, "test_examples": 2,
@@ -134,6 +135,28 @@ def test_summary_takes_the_median_of_back_to_back_pair_ratios():
     assert row["harness"]["padding_efficiency"] == pytest.approx(0.75)
     memory = next(t for t in report["targets"] if t["target"].startswith("peak memory"))
     assert memory["value"] == 903.0 and memory["verdict"].startswith("met")
+
+
+def test_a_variant_run_on_every_seed_gets_its_own_memory_speed_and_accuracy_targets():
+    base = [_run("harness", 1, 20.0, 0.98), _run("reference", 1, 10.0, 0.97),
+            _run("reference", 2, 12.0, 0.96), _run("harness", 2, 36.0, 0.98)]
+    variant = []
+    for seed, eps, acc, peak in ((1, 18.0, 0.96, 1400.0), (2, 22.0, 0.965, 1450.0)):
+        item = _run("harness", seed, eps, acc)
+        item["job"].update(memory_variant="setting X", id=f"memory-3-harness-minilm-l6-sms-spam-s{seed}")
+        item["result"]["peak_rss_mb"] = peak
+        variant.append(item)
+    one_seed = _run("harness", 1, 19.0, 0.9)
+    one_seed["job"].update(memory_variant="choice Y", id="memory-1-harness-minilm-l6-sms-spam-s1")
+    report = summarise(base + variant + [one_seed], matmul=[1e3], machine={}, settings={}, mode="test", seconds=1.0)
+    found = {t["target"]: t for t in report["targets"] if t["target"].endswith("with setting X")}
+    assert found["peak memory, MiniLM head training (MB), with setting X"]["value"] == 1450.0
+    # median of 18 and 22 = 20 ex/s against the reference's median of 10 and 12 = 11 ex/s
+    assert found["training throughput vs reference, MiniLM sms-spam, with setting X"]["value"] == pytest.approx(20 / 11)
+    gap = found["accuracy, harness - reference (points), minilm-l6 sms-spam, with setting X"]
+    assert gap["value"] == pytest.approx(100 * (0.9625 - 0.965)) and gap["verdict"].startswith("met")
+    assert not any("choice Y" in t["target"] for t in report["targets"])  # one seed: memory table only
+    assert [r["variant"] for r in report["memory"]] == ["setting X", "setting X", "choice Y"]
 
 
 def test_per_label_reference_scores_equal_unpadded_library_log_probs(toy_paths: dict[str, Path]):

@@ -183,7 +183,12 @@ def render_markdown(report: dict[str, Any]) -> str:
            f"{m.get('bf16_matmul_flops_per_second', float('nan')) / 1e9:.1f} GFLOP/s (CPU bf16 instructions: "
            f"{'yes' if m.get('cpu_bf16') else 'no'}).", "",
            "Harness settings beyond its defaults: " + ", ".join(f"`{k}={v}`" for k, v in report["harness_settings"].items())
-           + " (each measured switched back below).", "", "## Targets", ""]
+           + " (each measured switched back below).", ""]
+    kept = sum(1 for item in report.get("raw", []) if item["result"].get("reused"))
+    if kept:
+        out += [f"{kept} of {len(report['raw'])} jobs were kept from an earlier, interrupted run of the same command "
+                "(`--resume`); the minutes above are this invocation's, the matmul peak is the best of both.", ""]
+    out += ["## Targets", ""]
     out += _table(["target", "value", "verdict"], [(t["target"], "-" if t["value"] is None else f"{t['value']:.2f}",
                                                     t["verdict"]) for t in report["targets"]])
     out += ["## Training: harness `head` run vs the documented Trainer recipe", ""]

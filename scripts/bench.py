@@ -105,6 +105,9 @@ def main() -> int:
     decoder = cut_checkpoint("smollm2-135m", plan["decoder"]["layers"],
                              out / "checkpoints" / f"smollm2-135m-{plan['decoder']['layers']}layers")
     matmul = [matmul_flops_per_second()]
+    earlier = out / "bench.json"
+    if args.resume and earlier.is_file():  # kept jobs ran against the earlier run's peak: keep its measurements
+        matmul = json.loads(earlier.read_text(encoding="utf-8"))["machine"]["matmul_flops_per_second"] + matmul
     print(f"machine: {info['cpu_model']}, {info['physical_cores']} cores, torch threads {torch.get_num_threads()}, "
           f"load {info['load_average']}; fp32 matmul {matmul[0] / 1e9:.1f} GFLOP/s", flush=True)
 

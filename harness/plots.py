@@ -25,6 +25,7 @@ __all__ = [
     "groups_png",
     "human",
     "reliability_png",
+    "spaced_ticks",
 ]
 
 _INK, _ACCENT, _MUTED, _WARN = "#1d2329", "#2a6f97", "#8aa1b1", "#c8553d"
@@ -51,11 +52,21 @@ def human(value: float) -> str:
     return f"{value:.3g}"
 
 
+def spaced_ticks(values: Sequence[float], min_ratio: float = 1.15) -> list[float]:
+    """Sorted distinct positive tick values, dropping any within `min_ratio` of the previous kept one (their
+    labels would overlap on a log axis: 60.7 and 65 printed as "60.765")."""
+    kept: list[float] = []
+    for v in sorted(set(v for v in values if v > 0)):
+        if not kept or v / kept[-1] >= min_ratio:
+            kept.append(v)
+    return kept
+
+
 def _log_x(ax: Any, ticks: Sequence[float] | None = None) -> None:
     """Log x axis with plain tick text (no 10^k notation, no crowded minor labels)."""
     ax.set_xscale("log")
     if ticks is not None:
-        ax.set_xticks(sorted(set(ticks)))
+        ax.set_xticks(spaced_ticks(ticks))
     ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: human(v)))
     ax.xaxis.set_minor_formatter(NullFormatter())
 

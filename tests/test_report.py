@@ -182,3 +182,12 @@ def test_classes_never_predicted_are_called_out(tmp_path: Path) -> None:
     pred = np.zeros_like(test["gold"])  # a degenerate classifier: always the first label
     md = write_run_report(write_run(tmp_path, test, pred=pred))[0].read_text(encoding="utf-8")
     assert f"The model never predicts {LABELS[1]!r}, {LABELS[2]!r}" in md
+
+
+def test_log_axis_ticks_too_close_to_read_are_dropped() -> None:
+    from harness.plots import spaced_ticks
+
+    # 60.7 s and 65 s printed side by side read as "60.765"; zero has no place on a log axis.
+    assert spaced_ticks([65.0, 8.58, 60.7, 0.0, 8.58]) == [8.58, 60.7]
+    assert spaced_ticks([10.6e6, 106e6, 135e6]) == [10.6e6, 106e6, 135e6]  # 1.27x apart: both readable
+    assert spaced_ticks([1.0, 2.0, 4.0]) == [1.0, 2.0, 4.0]

@@ -36,7 +36,7 @@ TASKS = {
 HARNESS_SETTINGS = {"train.bf16": True, "method.freeze": "embeddings"}
 FULL: dict[str, Any] = {"train_size": 2000, "max_rows": None, "epochs": 2, "seeds": (13, 14, 15),
         "decoder": {"layers": 4, "train_size": 800, "max_rows": None, "epochs": 2},
-        "ablation_examples": 320, "scoring": {"prompts": 64, "repeats": 2, "layers": None}}
+        "ablation_examples": 320, "scoring": {"prompts": 64, "repeats": 5, "layers": None}}
 QUICK: dict[str, Any] = {"train_size": 160, "max_rows": 160, "epochs": 1, "seeds": (13,),
          "decoder": {"layers": 2, "train_size": 96, "max_rows": 96, "epochs": 1},
          "ablation_examples": 64, "scoring": {"prompts": 16, "repeats": 2, "layers": 4}}

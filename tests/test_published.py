@@ -30,12 +30,14 @@ def _config(name: str, tmp_path: Path, *overrides: str) -> Config:
     return load_config(CONFIGS / name, [f"output={tmp_path}", *overrides])
 
 
-def _run(cfg: Config) -> tuple[Path, dict[str, Any], float]:
-    """(run folder, metrics.json, wall seconds) of one run."""
+def _run(cfg: Config, title: str, names: tuple[str, ...]) -> tuple[Path, dict[str, Any]]:
+    """(run folder, metrics.json) of one run; its summary line (metrics `names`, costs) is printed under `title`."""
     started = time.perf_counter()
     folder = execute_run(cfg, log=lambda _line: None)
     seconds = time.perf_counter() - started
-    return folder, json.loads((folder / "metrics.json").read_text(encoding="utf-8")), seconds
+    metrics = json.loads((folder / "metrics.json").read_text(encoding="utf-8"))
+    print("\n" + _summary(title, metrics, seconds, names))
+    return folder, metrics
 
 
 def _predictions(folder: Path) -> tuple[list[str], list[str]]:
@@ -71,9 +73,7 @@ def test_sms_spam_splits_share_no_text() -> None:
 @pytest.mark.slow
 def test_minilm_head_on_sms_spam_reaches_published_accuracy(tmp_path: Path) -> None:
     cfg = _config("sms_spam_minilm.yaml", tmp_path)
-    folder, metrics, seconds = _run(cfg)
-    print("\n" + _summary("minilm-l6 head, sms-spam", metrics, seconds,
-                          ("accuracy", "positive_f1", "macro_f1")))
+    folder, metrics = _run(cfg, "minilm-l6 head, sms-spam", ("accuracy", "positive_f1", "macro_f1"))
     assert metrics["positive"] == "spam"  # positive_f1 below is the spam class's F1
     gold, predicted = _predictions(folder)
     # Independent recount from the predictions file with scikit-learn.
@@ -96,9 +96,7 @@ def test_minilm_head_on_sms_spam_reaches_published_accuracy(tmp_path: Path) -> N
 @pytest.mark.slow
 def test_minilm_head_on_question_types_reaches_published_accuracy(tmp_path: Path) -> None:
     cfg = _config("question_types_minilm.yaml", tmp_path)
-    folder, metrics, seconds = _run(cfg)
-    print("\n" + _summary("minilm-l6 head, question-types", metrics, seconds,
-                          ("accuracy", "macro_f1", "balanced_accuracy")))
+    folder, metrics = _run(cfg, "minilm-l6 head, question-types", ("accuracy", "macro_f1", "balanced_accuracy"))
     gold, predicted = _predictions(folder)
     assert metrics["metrics"]["accuracy"] == pytest.approx(accuracy_score(gold, predicted))
     assert metrics["metrics"]["macro_f1"] == pytest.approx(f1_score(gold, predicted, average="macro"))
@@ -115,15 +113,12 @@ def test_minilm_head_on_question_types_reaches_published_accuracy(tmp_path: Path
 def test_smollm2_next_token_on_sms_spam_beats_the_majority_baseline(tmp_path: Path) -> None:
     # Short training: 300 messages, one epoch, max_length 64 (configs/sms_spam_smollm2.yaml).
     cfg = _config("sms_spam_smollm2.yaml", tmp_path)
-    folder, trained, seconds = _run(cfg)
-    print("\n" + _summary("smollm2-135m next_token, sms-spam", trained, seconds,
-                          ("accuracy", "positive_f1", "macro_f1")))
+    folder, trained = _run(cfg, "smollm2-135m next_token, sms-spam", ("accuracy", "positive_f1", "macro_f1"))
     # The zero-shot prompt with the same template and label words (contextual calibration on, Zhao
     # et al. 2021): reported beside the trained result; only its validity is checked.
     zero_cfg = _config("sms_spam_smollm2.yaml", tmp_path, "method.kind=prompt", "method.calibrate=true")
-    zero_folder, zero, zero_seconds = _run(zero_cfg)
-    print(_summary("smollm2-135m prompt (zero-shot, calibrated), sms-spam", zero, zero_seconds,
-                   ("accuracy", "positive_f1", "macro_f1")))
+    zero_folder, zero = _run(zero_cfg, "smollm2-135m prompt (zero-shot, calibrated), sms-spam",
+                             ("accuracy", "positive_f1", "macro_f1"))
 
     assert trained["positive"] == "spam"
     gold, predicted = _predictions(folder)

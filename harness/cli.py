@@ -1,4 +1,7 @@
-"""The `harness` command line: one verb per job, every failure a one-line message, exit 2."""
+"""The `tiltyard` command line: one verb per job, every failure a one-line message, exit 2.
+
+The command was called `harness` before; that name still works for one release, with a notice.
+"""
 
 from __future__ import annotations
 
@@ -10,8 +13,9 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from harness.errors import HarnessError
+from harness.names import FORMER_PROGRAM, PROGRAM
 
-__all__ = ["main"]
+__all__ = ["main", "main_former_name"]
 
 EXIT_USER_ERROR = 2
 EXIT_INTERRUPTED = 130
@@ -24,7 +28,7 @@ def _add_set(p: argparse.ArgumentParser) -> None:
 
 def _parser() -> argparse.ArgumentParser:
     top = argparse.ArgumentParser(
-        prog="harness",
+        prog=PROGRAM,
         description="Fine-tune small pretrained transformers as text classifiers on a CPU and compare the ways of doing it.",
     )
     top.add_argument("--debug", action="store_true", help="show full tracebacks instead of one-line errors")
@@ -90,7 +94,7 @@ def _dispatch(args: argparse.Namespace) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of `harness` and `python -m harness`."""
+    """Entry point of the `tiltyard` command and of `python -m harness`."""
     args = _parser().parse_args(argv)
     logging.basicConfig(
         level=logging.WARNING if args.quiet else logging.INFO,
@@ -107,11 +111,18 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.debug:
             raise
         code = getattr(exc, "exit_code", EXIT_USER_ERROR)
-        print(f"harness {args.verb}: error: {exc}", file=sys.stderr)
+        print(f"{PROGRAM} {args.verb}: error: {exc}", file=sys.stderr)
         return int(code)
     except KeyboardInterrupt:
-        print(f"harness {args.verb}: interrupted", file=sys.stderr)
+        print(f"{PROGRAM} {args.verb}: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
+
+
+def main_former_name(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the old `harness` command: a one-line notice, then the same program."""
+    print(f"note: the '{FORMER_PROGRAM}' command is now '{PROGRAM}'; '{FORMER_PROGRAM}' stops working in the "
+          "next release", file=sys.stderr)
+    return main(argv)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -1,23 +1,132 @@
-"""What each command-line verb does: parse files, call the library, print where outputs went."""
+"""What each command-line verb does: call the library, print its results and where the outputs went.
+
+Every verb body is here, one function each, in the order of `cli.py`; the library modules return
+values (and log progress through a callback) but never print. The library is imported inside each
+verb so that `--help` and a typo answer before torch and transformers load.
+"""
 
 from __future__ import annotations
 
 import argparse
+import logging
+import tempfile
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 from harness.errors import HarnessError
+from harness.names import PROGRAM
 
 __all__ = [
-    "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_predict", "cmd_replay", "cmd_run",
-    "cmd_sweep", "cmd_toy",
+    "agree_command", "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_predict", "cmd_replay", "cmd_run",
+    "cmd_sweep", "cmd_toy", "compare_command", "replay_command", "sweep_command",
 ]
+
+logger = logging.getLogger(__name__)
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    """`run CONFIG`: train (if the method trains), evaluate on test, write the run folder."""
+    from harness.config import load_config
+    from harness.runs.run import execute_run
+
+    cfg = load_config(args.config, args.overrides)
+    if cfg.sweep.grid or cfg.sweep.arms:
+        raise HarnessError(f"{args.config} has a sweep block; run it with '{PROGRAM} sweep {args.config}'")
+    execute_run(cfg, resume=args.resume, overwrite=args.force, log=print)
+    return 0
+
+
+def cmd_sweep(args: argparse.Namespace) -> int:
+    """`sweep CONFIG`: every combination of the sweep block, then the comparison."""
+    return sweep_command(args.config, args.overrides, dry_run=args.dry_run, shard=args.shard,
+                         compare=not args.no_compare)
+
+
+def sweep_command(
+    config_path: Path, overrides: Sequence[str] = (), *, dry_run: bool = False, shard: str | None = None,
+    compare: bool = True,
+) -> int:
+    """Exit 0 when every run (of the shard) finished, 1 when some failed.
+
+    A data file that changed while the sweep ran is a HarnessError (exit 2) naming it, after the index
+    is written: the runs after the change were refused, and the sweep must be run again.
+    """
+    from harness.config import load_config
+    from harness.experiments.sweep import parse_shard, plan_sweep, run_sweep
+    from harness.train.processes import is_main_process
+
+    parts = parse_shard(shard)
+    cfg = load_config(config_path, overrides)
+    if not cfg.sweep.grid and not cfg.sweep.arms:
+        raise HarnessError(f"{config_path} has no sweep.grid or sweep.arms; run a single config with "
+                           f"'{PROGRAM} run {config_path}'")
+    name = Path(config_path).stem
+    if dry_run:
+        plan_sweep(cfg, name, parts, print)
+        return 0
+    # the other processes of a launch walk the sweep silently
+    summary = run_sweep(cfg, name, shard=parts, compare=compare, log=print if is_main_process() else _silent)
+    if summary["data_changed"]:  # not a broken run but changed input: the user must re-run, as for a bad config
+        raise HarnessError(f"{summary['data_changed']}; {len(summary['failed'])} runs were not run on one version "
+                           f"of it (listed in {Path(summary['folder']) / 'sweep.json'}): run '{PROGRAM} sweep "
+                           f"{config_path}' again to redo them on the new version")
+    return 1 if summary["failed"] else 0
+
+
+def _silent(_: str) -> None:
+    pass
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    """`compare DIRS...`: one comparison table over many runs."""
+    return compare_command(list(args.paths), args.out or args.paths[0], primary=args.primary)
+
+
+def compare_command(paths: list[Path], out_dir: Path, *, primary: str | None = None) -> int:
+    """Write the comparison, print its table and summary, and say where the files went."""
+    from harness.report.compare import compare_runs
+    from harness.report.compare_files import terminal_text
+
+    result = compare_runs(paths, out_dir, primary=primary)
+    print(terminal_text(result), end="")
+    for item in result["incomplete"]:
+        print(f"left out: {item['run']} ({item['state']}): {item['error']}")
+    print(f"comparison written to {out_dir}: " + ", ".join(Path(f).name for f in result["files"]))
+    return 0
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    """`replay RUN_DIR`: re-run from the saved config; 0 when identical, 1 when not."""
+    return replay_command(args.run_dir, args.out)
+
+
+def replay_command(run_dir: Path, out: Path | None = None) -> int:
+    """Print the replay's verdict and where the replayed run went; 0 when identical, 1 when not."""
+    from harness.experiments.replay import replay_run, replay_verdict
+
+    out_dir = Path(out) if out is not None else Path(tempfile.mkdtemp(prefix=f"{PROGRAM}-replay-"))
+    result = replay_run(Path(run_dir), out_dir, log=print)
+    print(replay_verdict(result))
+    print(f"replayed run in {result['replay']}; details in {Path(result['replay']) / 'replay.json'}")
+    return 0 if result["identical"] else 1
+
+
+def cmd_predict(args: argparse.Namespace) -> int:
+    """`predict RUN_DIR INPUT`: label new rows with a finished run's model."""
+    from harness.runs.predict import predict
+
+    out = args.out or args.input.with_name(args.input.stem + ".predictions.csv")
+    predict(args.run_dir, args.input, out)
+    print(f"predictions written to {out}")
+    return 0
 
 
 def cmd_audit(args: argparse.Namespace) -> int:
-    from harness.audit import audit_data, render_audit, write_audit
+    """`audit CONFIG`: data checks only."""
     from harness.config import load_config
-    from harness.data import load_task
+    from harness.data.audit import audit_data, render_audit, write_audit
+    from harness.data.task import load_task
 
     cfg = load_config(args.config, args.overrides)
     data = load_task(cfg.task, seed=cfg.train.seed)
@@ -34,84 +143,64 @@ def _token_counter(cfg: Any) -> Any:
     """Token counts with the config's tokenizer (the checkpoint's weights are not loaded)."""
     from transformers import AutoTokenizer
 
-    from harness.audit import token_counter
-    from harness.backbones import resolve_source
+    from harness.data.audit import token_counter
+    from harness.models.backbones import resolve_source
 
     source, gguf = resolve_source(cfg.model.checkpoint)
     if cfg.model.trust_remote_code:
-        import logging
-
-        logging.getLogger(__name__).warning("model.trust_remote_code is on: code shipped with %s will run",
-                                            cfg.model.checkpoint)
+        logger.warning("model.trust_remote_code is on: code shipped with %s will run", cfg.model.checkpoint)
     tokenizer = AutoTokenizer.from_pretrained(source, gguf_file=gguf, trust_remote_code=cfg.model.trust_remote_code)
     return token_counter(tokenizer)
 
 
-def cmd_run(args: argparse.Namespace) -> int:
-    from harness.config import load_config
-    from harness.runner import execute_run
-
-    cfg = load_config(args.config, args.overrides)
-    if cfg.sweep.grid or cfg.sweep.arms:
-        raise HarnessError(f"{args.config} has a sweep block; run it with 'harness sweep {args.config}'")
-    execute_run(cfg, resume=args.resume, overwrite=args.force)
-    return 0
-
-
-def cmd_sweep(args: argparse.Namespace) -> int:
-    from harness.sweep import sweep_command
-
-    return sweep_command(args.config, args.overrides, dry_run=args.dry_run, shard=args.shard,
-                         compare=not args.no_compare)
-
-
-def cmd_compare(args: argparse.Namespace) -> int:
-    from harness.compare import compare_command
-
-    return int(compare_command(list(args.paths), args.out or args.paths[0], primary=args.primary) or 0)
-
-
-def cmd_replay(args: argparse.Namespace) -> int:
-    from harness.replay import replay_command
-
-    return replay_command(args.run_dir, args.out)
-
-
-def cmd_predict(args: argparse.Namespace) -> int:
-    from harness.runner import predict
-
-    out = args.out or args.input.with_name(args.input.stem + ".predictions.csv")
-    predict(args.run_dir, args.input, out)
-    print(f"predictions written to {out}")
-    return 0
-
-
 def cmd_agree(args: argparse.Namespace) -> int:
-    from harness.agree import agree_command
-
+    """`agree A B`: agreement between two labelings."""
     return agree_command(args.labels_a, args.labels_b, id_column=args.id, label_column=args.label, out=args.out)
 
 
+def agree_command(
+    a: Path, b: Path, *, id_column: str = "id", label_column: str = "label", out: Path | None = None
+) -> int:
+    """Print the agreement report; with `out`, also write agreement.json/.md there."""
+    from harness.data.agreement import agreement, read_labels, render_agreement
+    from harness.files import atomic_write_json, atomic_write_text
+
+    labels_a = read_labels(Path(a), id_column=id_column, label_column=label_column)
+    labels_b = read_labels(Path(b), id_column=id_column, label_column=label_column)
+    report = {"a": str(a), "b": str(b), **agreement(labels_a, labels_b)}
+    text = render_agreement(report, str(a), str(b))
+    print(text, end="")
+    if out is not None:
+        out = Path(out)
+        atomic_write_json(out / "agreement.json", report)
+        atomic_write_text(out / "agreement.md", text)
+        print(f"agreement written to {out / 'agreement.md'} and {out / 'agreement.json'}")
+    return 0
+
+
 def cmd_assets(args: argparse.Namespace) -> int:
-    from harness import assets
+    """`assets`: list, prepare or cut the packaged checkpoints and data sets."""
+    from harness.models import assets
+    from harness.models.cut import cut_checkpoint
 
     if args.prepare is None:
-        assets.print_assets()
+        print(assets.format_assets())
         return 0
     if args.layers is not None:
         if len(args.prepare) != 1 or args.out is None:
             raise HarnessError("--layers needs exactly one checkpoint name and --out DIR")
         src = assets.resolve_checkpoint(args.prepare[0])
-        out = assets.cut_checkpoint(src, args.layers, args.out)
+        out = cut_checkpoint(src, args.layers, args.out)
         print(f"{args.prepare[0]} cut to {args.layers} layers in {out}")
         return 0
-    for path in assets.prepare(args.prepare):
+    for path in assets.prepare(args.prepare, log=print):
         print(f"ready: {path}")
     return 0
 
 
 def cmd_toy(args: argparse.Namespace) -> int:
-    from harness.toy import toy_main
+    """`toy OUT_DIR`: build the tiny random-weight checkpoints."""
+    from harness.models.toy import toy_main
 
     for path in toy_main(args.out_dir, args.seed):
         print(f"toy checkpoint written to {path}")

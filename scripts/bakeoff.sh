@@ -5,4 +5,4 @@ cd "$(dirname "$0")/.."
 bash scripts/setup.sh
 . .venv/bin/activate
 export HF_HUB_OFFLINE=1 TRANSFORMERS_OFFLINE=1 HF_DATASETS_OFFLINE=1
-harness sweep configs/bakeoff.yaml "$@"
+tiltyard sweep configs/bakeoff.yaml "$@"

@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Create .venv (if missing) and install the harness with everything it needs, offline-safe assets included.
+# Create .venv (if missing) and install tiltyard (the `harness` package) with everything it needs, offline-safe assets included.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 PY=${PYTHON:-python3}

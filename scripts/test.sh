@@ -10,6 +10,6 @@ if ! command -v chromium >/dev/null 2>&1 && command -v apt-get >/dev/null 2>&1 &
 fi
 . .venv/bin/activate
 export HF_HUB_OFFLINE=1 TRANSFORMERS_OFFLINE=1 HF_DATASETS_OFFLINE=1
-ruff check harness tests scripts
-mypy harness scripts
+ruff check harness tests scripts bench conftest.py
+mypy harness scripts bench
 python -m pytest -q -ra --durations=15 "$@"

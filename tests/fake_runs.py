@@ -17,8 +17,9 @@ from typing import Any
 import numpy as np
 
 from harness.config import config_from_dict, dump_config
-from harness.metrics import compute_metrics
-from harness.runs import atomic_write_json, atomic_write_text, run_id, write_status
+from harness.files import atomic_write_json, atomic_write_text
+from harness.metrics.scores import compute_metrics
+from harness.runs.folders import run_id, write_status
 
 LABELS = ("billing", "outage", "account")
 WORDS = ("my invoice is wrong", "the site is down again", "cannot log in", "charged twice this month",

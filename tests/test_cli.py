@@ -10,8 +10,8 @@ from pathlib import Path
 import pytest
 
 from harness.cli import _parser, main
+from tests.common import ROOT
 
-ROOT = Path(__file__).resolve().parents[1]
 VERBS = ["run", "sweep", "compare", "replay", "predict", "audit", "agree", "assets", "toy"]
 
 
@@ -26,7 +26,19 @@ def test_every_verb_has_help(verb: str, capsys: pytest.CaptureFixture[str]) -> N
     with pytest.raises(SystemExit) as stop:
         main([verb, "--help"])
     assert stop.value.code == 0
-    assert f"usage: harness {verb}" in capsys.readouterr().out
+    assert f"usage: tiltyard {verb}" in capsys.readouterr().out
+
+
+def test_former_command_name_still_works_with_a_one_line_notice(capsys: pytest.CaptureFixture[str]) -> None:
+    from harness.cli import main_former_name
+
+    with pytest.raises(SystemExit) as stop:
+        main_former_name(["toy", "--help"])
+    assert stop.value.code == 0
+    captured = capsys.readouterr()
+    assert "usage: tiltyard toy" in captured.out
+    notice = captured.err.strip().splitlines()
+    assert len(notice) == 1 and "'harness' command is now 'tiltyard'" in notice[0]
 
 
 def test_config_verbs_take_set() -> None:

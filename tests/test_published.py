@@ -18,12 +18,11 @@ from typing import Any
 import pytest
 from sklearn.metrics import accuracy_score, f1_score
 
-from harness.audit import audit_data
 from harness.config import Config, load_config
-from harness.data import load_task
-from harness.runner import execute_run
-
-CONFIGS = Path(__file__).resolve().parent.parent / "configs"
+from harness.data.audit import audit_data
+from harness.data.task import load_task
+from harness.runs.run import execute_run
+from tests.common import CONFIGS
 
 
 def _config(name: str, tmp_path: Path, *overrides: str) -> Config:

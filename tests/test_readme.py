@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import re
 import runpy
-from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[1]
+from tests.common import ROOT
+
 README = (ROOT / "README.md").read_text(encoding="utf-8")
 
 

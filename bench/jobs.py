@@ -1,0 +1,217 @@
+"""The benchmark's training contenders, each run as `python -m bench.jobs JOB.json RESULT.json`.
+
+- `harness`: one `harness.runs.run.execute_run` of the `head` method, exactly as `tiltyard run` does it.
+- `reference`: the same checkpoint, data, epochs, batch size, learning rate and max length, trained
+  the way the transformers documentation teaches (its text-classification task guide and the
+  `Trainer` pages): `AutoModelForSequenceClassification`, `DataCollatorWithPadding`, `Trainer`
+  with `TrainingArguments(use_cpu=True, ...)` and every other argument at its default (random
+  batches, the library's default optimizer and schedule).
+- `ablation` (bench.ablate) and `scoring` (bench.scoring) live in their own modules.
+
+Every job reports its own peak resident memory (getrusage ru_maxrss): one process per job keeps
+the peaks of different contenders apart. Run by scripts/benchmark.py, never by tests.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+__all__ = ["JOBS", "build_config", "main", "token_lengths"]
+
+
+def _set_dotted(data: dict[str, Any], key: str, value: Any) -> None:
+    section = data
+    *parents, last = key.split(".")
+    for part in parents:
+        section = section.setdefault(part, {})
+    section[last] = value
+
+
+def build_config(job: dict[str, Any], output: Path) -> Any:
+    """The harness Config of a training job: task, checkpoint, shared settings, then the job's own overrides."""
+    from harness.config import config_from_dict
+
+    data: dict[str, Any] = {
+        "task": dict(job["task"]), "model": {"checkpoint": job["checkpoint"]},
+        "method": {"kind": "head"},
+        "train": {"epochs": job["epochs"], "batch_size": job["batch_size"], "learning_rate": job["learning_rate"],
+                  "max_length": job["max_length"], "seed": job["seed"], "threads": job.get("threads"),
+                  "log_every": 20},
+        "eval": {"primary": "macro_f1", "bootstrap": 0, "batch_size": 64}, "output": str(output),
+    }
+    for key, value in job.get("settings", {}).items():
+        _set_dotted(data, key, value)
+    return config_from_dict(data)
+
+
+def token_lengths(tokenizer: Any, texts: Any, max_length: int) -> list[int]:
+    """Real token counts after truncation, as both contenders tokenise (special tokens included)."""
+    return [len(ids) for ids in tokenizer(list(texts), truncation=True, max_length=max_length)["input_ids"]]
+
+
+def _model_facts(model: Any) -> dict[str, int]:
+    from bench.flops import nonembedding_parameters
+
+    config = model.config
+    return {"nonembedding_parameters": nonembedding_parameters(model), "layers": int(config.num_hidden_layers),
+            "hidden": int(config.hidden_size), "parameters": sum(p.numel() for p in model.parameters())}
+
+
+def _apply_patches(job: dict[str, Any]) -> None:
+    """The memory ablations: one harness choice undone for this process (see scripts/benchmark.py)."""
+    from harness.methods import head as head_method
+    from harness.train import loop as train
+
+    if "pad_multiple" in job:  # batch widths not rounded up
+        head_method.PAD_MULTIPLE = int(job["pad_multiple"])
+    if job.get("heap") == "default":  # glibc's own, adaptive mmap threshold
+        train.release_large_blocks = lambda threshold=0: False  # type: ignore[misc]
+
+
+def run_harness(job: dict[str, Any]) -> dict[str, Any]:
+    """One harness `head` run; the throughput is the run's own `cost.train_examples_per_second`."""
+    import torch
+    from transformers import AutoTokenizer
+
+    from bench.flops import padded_tokens
+    from harness.data.task import load_task
+    from harness.methods import head as head_method
+    from harness.models.backbones import resolve_source
+    from harness.runs.run import execute_run
+    from harness.train.batching import epoch_batches
+
+    _apply_patches(job)
+    with tempfile.TemporaryDirectory(prefix="bench-run-") as tmp:
+        cfg = build_config(job, Path(tmp))
+        folder = execute_run(cfg, log=lambda _line: None)
+        metrics = json.loads((folder / "metrics.json").read_text(encoding="utf-8"))
+        method = json.loads((folder / "method.json").read_text(encoding="utf-8"))
+    data = load_task(cfg.task, seed=cfg.train.seed)
+    source, _ = resolve_source(cfg.model.checkpoint)
+    lengths = token_lengths(AutoTokenizer.from_pretrained(str(source)), data.train.texts, cfg.train.max_length)
+    t = cfg.train
+    padded = sum(padded_tokens(lengths, epoch_batches(lengths, t.batch_size, mode=t.batching, pool_batches=t.pool_batches,
+                                                      seed=t.seed, epoch=e, labels=data.train.labels),
+                               width=lambda n: head_method.batch_width(n, t.max_length))
+                 for e in range(int(t.epochs)))
+    cost = metrics["cost"]
+    return {"contender": "harness", "examples_per_second": cost["train_examples_per_second"],
+            "train_seconds": cost["train_seconds"], "eval_seconds": cost["eval_seconds"],
+            "accuracy": metrics["metrics"]["accuracy"], "macro_f1": metrics["metrics"]["macro_f1"],
+            "steps": cost["steps"], "train_examples": len(data.train), "test_examples": len(data.test),
+            "lengths": lengths, "real_tokens": sum(lengths) * int(t.epochs), "padded_tokens": padded,
+            "trainable_parameters": method.get("trainable_parameters"), "torch_threads": torch.get_num_threads(),
+            "model": _loaded_facts(cfg)}
+
+
+def _loaded_facts(cfg: Any) -> dict[str, int]:
+    """N, layers and width of the bare backbone the head method trains (loaded again: the run has ended)."""
+    from harness.models.backbones import load_backbone
+
+    return _model_facts(load_backbone(cfg.model, for_lm=False).model)
+
+
+def run_reference(job: dict[str, Any]) -> dict[str, Any]:
+    """The documented transformers recipe on the same data; throughput = examples seen / trainer.train() time."""
+    import numpy as np
+    import torch
+    from datasets import Dataset
+    from sklearn.metrics import accuracy_score, f1_score
+    from transformers import (
+        AutoModelForSequenceClassification,
+        AutoTokenizer,
+        DataCollatorWithPadding,
+        Trainer,
+        TrainingArguments,
+    )
+    from transformers.utils import logging as hf_logging
+
+    from harness.data.task import load_task
+    from harness.models.backbones import resolve_source
+
+    hf_logging.set_verbosity_error()  # the "newly initialized weights" notice, once per job
+    if job.get("threads"):
+        torch.set_num_threads(int(job["threads"]))  # the same thread count as the harness run, when one is forced
+    cfg = build_config(job, Path(tempfile.gettempdir()))
+    data = load_task(cfg.task, seed=cfg.train.seed)  # the very splits (and train subsample) the harness run sees
+    source, _ = resolve_source(cfg.model.checkpoint)
+    tokenizer = AutoTokenizer.from_pretrained(str(source))
+    model = AutoModelForSequenceClassification.from_pretrained(str(source), num_labels=len(data.label_names))
+    if tokenizer.pad_token is None:  # the documented fix for decoders without a pad token
+        tokenizer.pad_token = tokenizer.eos_token
+    model.config.pad_token_id = tokenizer.pad_token_id
+
+    def dataset(split: Any) -> Any:
+        raw = Dataset.from_dict({"text": list(split.texts), "label": list(split.labels)})
+        return raw.map(lambda b: tokenizer(b["text"], truncation=True, max_length=cfg.train.max_length),
+                       batched=True, remove_columns=["text"])
+
+    train_set, test_set = dataset(data.train), dataset(data.test)
+    collator = DataCollatorWithPadding(tokenizer)
+    shapes: list[tuple[int, int]] = []
+
+    def counting_collator(features: list[dict[str, Any]]) -> Any:
+        batch = collator(features)  # unchanged; the shape is only recorded, for the padding count
+        shapes.append(tuple(batch["input_ids"].shape))  # type: ignore[arg-type]
+        return batch
+
+    with tempfile.TemporaryDirectory(prefix="bench-ref-") as out:
+        args = TrainingArguments(output_dir=out, use_cpu=True, num_train_epochs=cfg.train.epochs,
+                                 per_device_train_batch_size=cfg.train.batch_size,
+                                 learning_rate=cfg.train.learning_rate, seed=cfg.train.seed, disable_tqdm=True)
+        trainer = Trainer(model=model, args=args, train_dataset=train_set, processing_class=tokenizer,
+                          data_collator=counting_collator)
+        started = time.perf_counter()
+        trainer.train()
+        seconds = time.perf_counter() - started
+        train_shapes = list(shapes)
+        predicted = np.asarray(trainer.predict(test_set).predictions).argmax(-1)
+    lengths = [len(x) for x in train_set["input_ids"]]
+    seen = len(data.train) * cfg.train.epochs
+    return {"contender": "reference", "examples_per_second": seen / seconds, "train_seconds": seconds,
+            "accuracy": float(accuracy_score(data.test.labels, predicted)),
+            "macro_f1": float(f1_score(data.test.labels, predicted, average="macro")),
+            "steps": len(train_shapes), "train_examples": len(data.train), "test_examples": len(data.test),
+            "lengths": lengths, "real_tokens": sum(lengths) * int(cfg.train.epochs),
+            "padded_tokens": sum(b * s for b, s in train_shapes), "optimizer": str(args.optim),
+            "torch_threads": torch.get_num_threads(), "model": _model_facts(model.base_model)}
+
+
+def _run_ablation(job: dict[str, Any]) -> dict[str, Any]:
+    from bench.ablate import run_ablations
+
+    return run_ablations(job)
+
+
+def _run_scoring(job: dict[str, Any]) -> dict[str, Any]:
+    from bench.scoring import run_scoring
+
+    return run_scoring(job)
+
+
+JOBS = {"harness": run_harness, "reference": run_reference, "ablation": _run_ablation, "scoring": _run_scoring}
+
+
+def main(argv: list[str]) -> int:
+    """Run the job described in argv[0] (JSON) and write its result, with peak memory, to argv[1]."""
+    import resource
+    import warnings
+
+    os.environ["HF_HUB_OFFLINE"] = "1"  # no model hub at run time
+    warnings.filterwarnings("ignore")  # library notices would only clutter the job log
+    job = json.loads(Path(argv[0]).read_text(encoding="utf-8"))
+    result = JOBS[job["kind"]](job)
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
+    result["peak_rss_mb"] = peak / 1024 if sys.platform != "darwin" else peak / 2**20
+    Path(argv[1]).write_text(json.dumps(result), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main(sys.argv[1:]))

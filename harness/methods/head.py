@@ -1,0 +1,263 @@
+"""The `head` method: a bare backbone, a pooling module and a fresh seeded classification head.
+
+Everything the training loop needs (encode, collate, loss, predict_proba) is here; the modules
+themselves are in `harness.methods.pooling` and the export format in `harness.methods.head_export`.
+
+Every head is `Linear(hidden, num_labels)` with a bias, D*K + K parameters, for every family (common
+practice for a fresh classifier). The library's decoder classes (GPT-2's and Llama's `score`) have
+no bias, so a decoder head is exported in our own format (see `harness.methods.head_export`), not theirs.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections import Counter
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+
+from harness.config import Config
+from harness.data.task import TaskData
+from harness.errors import SettingError
+from harness.methods.pooling import ClassifierHead, HeadModel, build_pooling, pad_batch, resolve_pooling
+from harness.methods.registry import Encoded, register_method
+from harness.models.backbones import Backbone, clamp_max_length, load_backbone
+
+__all__ = ["PAD_MULTIPLE", "ROUND_ABOVE", "HeadMethod", "batch_width", "class_weights", "collate_encoded",
+           "count_parameters", "encode_texts", "predict_batches"]
+
+_EMBEDDING_PARTS = {"embeddings", "wte", "wpe", "embed_tokens", "embed_positions", "shared"}
+# Batches wider than ROUND_ABOVE tokens are padded on to a multiple of PAD_MULTIPLE. Why: a width for every
+# length up to max_length means new matrix shapes nearly every batch; the CPU kernel library keeps the
+# kernels it builds per shape, and the allocator keeps blocks of every size. Measured on MiniLM / SMS spam
+# (scripts/benchmark.py, 2 epochs): peak memory about 2.0 GB -> 1.6 GB at the same speed. Short batches stay
+# exact: their activations are small, and rounding 13 tokens up to 16 would cost a fifth more work.
+PAD_MULTIPLE = 8
+ROUND_ABOVE = 32
+
+
+def batch_width(longest: int, limit: int) -> int:
+    """The width a batch is padded to: its longest row, rounded up to PAD_MULTIPLE above ROUND_ABOVE, within `limit`."""
+    if longest <= ROUND_ABOVE:
+        return longest
+    return max(longest, min(-(-longest // PAD_MULTIPLE) * PAD_MULTIPLE, limit))
+
+
+def class_weights(spec: str | dict[str, float] | None, train_labels: Sequence[int],
+                  label_names: Sequence[str]) -> torch.Tensor | None:
+    """Cross-entropy class weights: None, `balanced` (n / (K * count_k)) or explicit {label: weight} (others 1)."""
+    if spec is None:
+        return None
+    k = len(label_names)
+    if spec == "balanced":
+        counts = Counter(train_labels)
+        missing = [label_names[i] for i in range(k) if counts.get(i, 0) == 0]
+        if missing:
+            raise SettingError("method.class_weights", f"balanced: label {missing[0]!r} has no training rows, "
+                               "so its weight would be infinite; give explicit weights")
+        n = len(train_labels)
+        return torch.tensor([n / (k * counts[i]) for i in range(k)], dtype=torch.float32)
+    assert isinstance(spec, dict)  # the config only allows None, 'balanced' or a mapping
+    for name in spec:
+        if name not in label_names:
+            raise SettingError(f"method.class_weights.{name}", f"not a label of the task ({', '.join(label_names)})")
+    return torch.tensor([float(spec.get(name, 1.0)) for name in label_names], dtype=torch.float32)
+
+
+def count_parameters(module: nn.Module) -> tuple[int, int]:
+    """(trainable, total) parameter counts."""
+    params = list(module.parameters())
+    return sum(p.numel() for p in params if p.requires_grad), sum(p.numel() for p in params)
+
+
+def _head_dropout(cfg: Config, config: Any) -> float:
+    """method.dropout, else the checkpoint's classifier/hidden dropout, else 0.1."""
+    if cfg.method.dropout is not None:
+        return cfg.method.dropout
+    for name in ("classifier_dropout", "hidden_dropout_prob", "resid_pdrop", "dropout_rate", "hidden_dropout"):
+        value = getattr(config, name, None)
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            return float(value)
+    return 0.1
+
+
+def _freeze(model: HeadModel, what: str) -> None:
+    if what == "backbone":  # linear probe: only the fresh head trains
+        for p in [*model.backbone.parameters(), *model.pooling.parameters()]:
+            p.requires_grad_(False)
+    elif what == "embeddings":
+        backbone: Any = model.backbone
+        input_embedding = backbone.get_input_embeddings()
+        frozen = {id(p) for p in input_embedding.parameters()}
+        for name, p in backbone.named_parameters():
+            if id(p) in frozen or _EMBEDDING_PARTS.intersection(name.split(".")):
+                p.requires_grad_(False)
+
+
+def _add_lora(backbone: Any, cfg: Config) -> Any:
+    """Wrap the backbone in peft low-rank adapters; peft freezes everything else in it."""
+    import peft
+    from transformers.pytorch_utils import Conv1D
+
+    lora = cfg.method.lora
+    assert lora is not None
+    settings = peft.LoraConfig(
+        r=lora.r, lora_alpha=lora.alpha, lora_dropout=lora.dropout,  # type: ignore[arg-type]  # a float works
+        target_modules=list(lora.targets) if lora.targets else None,  # None: peft's per-architecture default
+        # GPT-2 stores its projections as Conv1D (transposed weights); peft must be told.
+        fan_in_fan_out=any(isinstance(m, Conv1D) for m in backbone.modules()),
+    )
+    # peft draws adapter A matrices from the global stream: seed it locally so adapters are reproducible.
+    with torch.random.fork_rng(devices=[]), warnings.catch_warnings():
+        torch.manual_seed(cfg.train.seed)
+        # peft calls a transformers method that transformers itself marks deprecated; not ours to act on.
+        warnings.simplefilter("ignore", FutureWarning)
+        try:
+            return peft.get_peft_model(backbone, settings)
+        except ValueError as exc:
+            raise SettingError("method.lora.targets", f"{str(exc).splitlines()[0]}") from None
+
+
+def encode_texts(tokenizer: Any, texts: Sequence[Any], labels: Sequence[int], max_length: int,
+                 type_ids: bool) -> list[Encoded]:
+    """Tokenise texts (strings or pairs) with truncation; keep segment ids when the model takes them."""
+    if not texts:
+        return []
+    if isinstance(texts[0], tuple):
+        enc = tokenizer([t[0] for t in texts], [t[1] for t in texts], truncation="longest_first",
+                        max_length=max_length)
+    else:
+        enc = tokenizer(list(texts), truncation=True, max_length=max_length)
+    out = []
+    for i, label in enumerate(labels):
+        extra = {"token_type_ids": tuple(enc["token_type_ids"][i])} if type_ids else None
+        out.append(Encoded(tuple(enc["input_ids"][i]), int(label), extra))
+    return out
+
+
+def collate_encoded(items: Sequence[Encoded], pad_id: int, type_ids: bool,
+                    limit: int | None = None) -> dict[str, torch.Tensor]:
+    """A right-padded batch with labels; given `limit` (max_length), its width follows `batch_width`."""
+    types = [it.extra["token_type_ids"] for it in items] if type_ids else None  # type: ignore[index]
+    width = batch_width(max(len(it) for it in items), limit) if limit is not None else None
+    batch = pad_batch([it.input_ids for it in items], pad_id, type_ids=types, width=width)
+    batch["labels"] = torch.tensor([it.label for it in items], dtype=torch.long)
+    return batch
+
+
+def predict_batches(model: nn.Module, batches: Any, forward: Any) -> np.ndarray:
+    """Softmax rows of `forward(batch)` over `batches`, in eval mode under inference_mode; mode restored."""
+    device = next(model.parameters()).device
+    was_training = model.training
+    model.eval()
+    rows = []
+    try:
+        with torch.inference_mode():
+            for batch in batches:
+                batch = {k: v.to(device) for k, v in batch.items()}
+                rows.append(torch.softmax(forward(batch).float(), dim=-1).cpu().numpy())
+    finally:
+        model.train(was_training)
+    return np.concatenate(rows).astype(np.float64)
+
+
+@register_method("head")
+class HeadMethod:
+    """Backbone + pooling + fresh head, trained with cross-entropy."""
+
+    name = "head"
+    trains = True
+
+    def __init__(self, *, cfg: Config, data: TaskData, backbone: Backbone | None = None) -> None:
+        m = cfg.method
+        self.cfg = cfg
+        self.label_names = tuple(data.label_names)
+        self.backbone = backbone or load_backbone(cfg.model, for_lm=False)
+        self.tokenizer = self.backbone.tokenizer
+        self.family = self.backbone.family
+        self.max_length = clamp_max_length(self.backbone, cfg.train.max_length)
+        self.pooling_name = resolve_pooling(m.pooling, self.family)
+        bare = self.backbone.model
+        pooler = getattr(bare, "pooler", None)
+        if m.use_pooler and pooler is None:
+            raise SettingError("method.use_pooler", f"{cfg.model.checkpoint!r} has no trained pooler layer; "
+                               "set method.use_pooler: false")
+        if isinstance(pooler, nn.Module):
+            bare.pooler = None  # moved into the pooling module when used; otherwise not computed at all
+        pooling = build_pooling(self.pooling_name, pooler=pooler if m.use_pooler else None)
+        config = self.backbone.config
+        self.head_bias = True  # kept as a field: exports record it, older runs may lack it
+        head = ClassifierHead(config.hidden_size, len(self.label_names), dropout=_head_dropout(cfg, config),
+                              seed=cfg.train.seed, std=float(getattr(config, "initializer_range", 0.02)),
+                              bias=self.head_bias)
+        if m.lora is not None:
+            bare = _add_lora(bare, cfg)
+        self.model = HeadModel(bare, pooling, head, self.family)
+        _freeze(self.model, m.freeze)
+        weights = class_weights(m.class_weights, data.train.labels, self.label_names)
+        self.loss_fn = nn.CrossEntropyLoss(weight=weights, label_smoothing=m.label_smoothing)
+        # Encoders take segment ids for text pairs; GPT-2 would add them through its token embeddings.
+        self.uses_type_ids = self.family == "encoder" and "token_type_ids" in self.tokenizer.model_input_names
+
+    # ----- the Method protocol -----
+
+    def cache_params(self) -> dict[str, Any]:
+        """What besides tokenizer, data and max_length changes `encode`'s output."""
+        return {"method": "head", "type_ids": self.uses_type_ids}
+
+    def encode(self, texts: Sequence[Any], labels: Sequence[int]) -> list[Encoded]:
+        """Tokenise with truncation to max_length; pairs as two segments."""
+        return encode_texts(self.tokenizer, texts, labels, self.max_length, self.uses_type_ids)
+
+    def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
+        """Right-pad to the longest example of the batch (wide batches rounded up, see `batch_width`)."""
+        return collate_encoded(items, self.tokenizer.pad_token_id, self.uses_type_ids, limit=self.max_length)
+
+    def logits(self, batch: dict[str, torch.Tensor]) -> torch.Tensor:
+        return self.model(batch["input_ids"], batch["attention_mask"], batch.get("token_type_ids"))
+
+    def loss(self, batch: dict[str, torch.Tensor]) -> torch.Tensor:
+        # float(): under bf16 autocast the logits are bf16; the loss is taken in fp32.
+        return self.loss_fn.to(batch["labels"].device)(self.logits(batch).float(), batch["labels"])
+
+    def predict_proba(self, items: Sequence[Encoded], batch_size: int) -> np.ndarray:
+        """Softmax probabilities (n, num_labels) in the order given, in eval mode, without gradients."""
+        if not items:
+            return np.zeros((0, len(self.label_names)))
+        # Batches of similar lengths pad less; rows go back to the caller's order at the end.
+        order = sorted(range(len(items)), key=lambda i: len(items[i]))
+        batches = (self.collate([items[i] for i in order[lo:lo + batch_size]]) for lo in range(0, len(items), batch_size))
+        probs = predict_batches(self.model, batches, self.logits)
+        out = np.empty_like(probs)
+        out[order] = probs
+        return out
+
+    def trainable_parameters(self) -> list[tuple[str, nn.Parameter]]:
+        return [(n, p) for n, p in self.model.named_parameters() if p.requires_grad]
+
+    def save(self, folder: Any) -> None:
+        from harness.methods.head_export import save_head_model
+
+        self.export_format = save_head_model(self, Path(folder))
+
+    def describe(self) -> dict[str, Any]:
+        trainable, total = count_parameters(self.model)
+        m = self.cfg.method
+        return {
+            "kind": "head", "family": self.family, "checkpoint": self.cfg.model.checkpoint,
+            "source": str(self.backbone.source), "pooling": self.pooling_name, "use_pooler": m.use_pooler,
+            "hidden_size": int(self.backbone.config.hidden_size), "num_labels": len(self.label_names),
+            "labels": list(self.label_names), "head_bias": self.head_bias, "dropout": self.model.head.dropout.p,
+            "freeze": m.freeze, "lora": None if m.lora is None else {"r": m.lora.r, "alpha": m.lora.alpha,
+                                                                      "dropout": m.lora.dropout},
+            "class_weights": None if self.loss_fn.weight is None else self.loss_fn.weight.tolist(),
+            "label_smoothing": m.label_smoothing, "max_length": self.max_length,
+            "pad_token": self.tokenizer.pad_token, "pad_token_id": self.tokenizer.pad_token_id,
+            "pad_token_added": self.backbone.pad_token_added, "notes": list(self.backbone.notes),
+            "trainable_parameters": trainable, "total_parameters": total,
+            "export_format": getattr(self, "export_format", None),
+        }

@@ -1,0 +1,374 @@
+"""Label words as next tokens: masked-loss training (`next_token`) and rank scoring (`next_token`, `prompt`).
+
+Each example becomes prompt + label words of its gold label (+ the end-of-text token with
+`method.end_token`). Only the label-word tokens carry loss: every prompt and padding position has
+the ignore index, and as a causal LM predicts the next token, position t is scored on token t+1.
+Truncation cuts the example's text, never the template or the label words (templates.py).
+
+Rank scoring: the score of label y is the log-probability of its tokens after the prompt, summed
+or per-token mean (`method.score`); softmax over labels gives the probabilities. A batch of
+prompts runs once, left-padded (attention mask zero on the pads, position ids counted from each
+prompt's first real token), with `use_cache=True`. Its key/value cache (a transformers
+`DynamicCache`, tensors of shape (batch, heads, seq, head_dim) per layer) is repeated over the
+label sequences with `batch_repeat_interleave`, and all labels' continuations run in one more
+pass. Single-token label words need only the prompt pass. For encoder-decoder checkpoints the
+label words (with the tokenizer's closing token, e.g. </s>) are the decoder target: the encoder
+runs once per prompt and its outputs serve every label; training is the ordinary seq2seq loss.
+Several words for one label are scored each and averaged as probabilities (`multi_word: average`);
+training uses the first word. Encoder-only checkpoints are refused: they have no next-token layer.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import logging
+import math
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from transformers.modeling_outputs import BaseModelOutput
+
+from harness.config import Config, config_from_dict, config_to_dict
+from harness.data.task import Split, TaskData
+from harness.errors import HarnessError, SettingError
+from harness.methods.registry import Encoded, register_method
+from harness.methods.templates import (
+    PromptBuilder,
+    check_text_fields,
+    parse_template,
+    resolve_label_words,
+    special_tokens_around,
+    tokenize_label_words,
+    wants_space,
+)
+from harness.models.backbones import Backbone, clamp_max_length, load_backbone
+
+__all__ = [
+    "IGNORE_INDEX",
+    "INFO_FILE",
+    "ExportedLM",
+    "NextTokenMethod",
+    "decoder_rank_scores",
+    "label_log_scores",
+    "masked_lm_loss",
+    "seq2seq_rank_scores",
+]
+
+logger = logging.getLogger(__name__)
+IGNORE_INDEX = -100  # torch cross_entropy's default ignore_index
+INFO_FILE = "next_token.json"  # beside the saved model: label token ids and what rebuilding the method needs
+
+
+def masked_lm_loss(logits: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
+    """Mean cross-entropy of the tokens whose target is not IGNORE_INDEX; logits at t predict targets at t+1."""
+    vocab = logits.shape[-1]
+    shifted = logits[:, :-1].reshape(-1, vocab)  # (batch * (seq-1), vocab)
+    return F.cross_entropy(shifted.float(), targets[:, 1:].reshape(-1), ignore_index=IGNORE_INDEX)
+
+
+def _device(model: torch.nn.Module) -> torch.device:
+    return next(model.parameters()).device
+
+
+def _pad(seqs: Sequence[Sequence[int]], value: int, *, left: bool = False) -> tuple[torch.Tensor, torch.Tensor]:
+    """(ids, mask) of shape (n, longest), padded on the left or the right."""
+    width = max(len(s) for s in seqs)
+    ids = torch.full((len(seqs), width), value, dtype=torch.long)
+    mask = torch.zeros((len(seqs), width), dtype=torch.long)
+    for i, s in enumerate(seqs):
+        if s:
+            span = slice(width - len(s), width) if left else slice(0, len(s))
+            ids[i, span] = torch.tensor(list(s), dtype=torch.long)
+            mask[i, span] = 1
+    return ids, mask
+
+
+def _last_position_only(model: Any) -> dict[str, Any]:
+    """`logits_to_keep=1` where the model takes it: the output layer then runs on the prompts' last column only.
+
+    Why: the prompt pass needs one distribution per prompt, and the output layer over every position
+    (vocabulary x hidden per token, a fifth of a small decoder's weights) is wasted work.
+    """
+    import inspect
+
+    try:
+        takes = "logits_to_keep" in inspect.signature(model.forward).parameters
+    except (TypeError, ValueError):  # a forward without a readable signature
+        takes = False
+    return {"logits_to_keep": 1} if takes else {}
+
+
+@torch.inference_mode()  # like the head evaluation pass: no autograd bookkeeping at all
+def decoder_rank_scores(model: Any, prompts: Sequence[Sequence[int]],
+                        seqs: Sequence[Sequence[int]], pad_id: int) -> torch.Tensor:
+    """Summed log-probs (n_prompts, n_seqs) of every sequence after every prompt, prompts run once."""
+    device = _device(model)
+    n, m = len(prompts), len(seqs)
+    ids, mask = _pad(prompts, pad_id, left=True)  # left padding: the last column is every prompt's end
+    positions = (mask.cumsum(-1) - 1).clamp(min=0)  # so padding does not shift a prompt's positions
+    out = model(input_ids=ids.to(device), attention_mask=mask.to(device), position_ids=positions.to(device),
+                use_cache=True, **_last_position_only(model))
+    first = out.logits[:, -1].float().log_softmax(-1)  # (n, vocab): distribution of the first label token
+    scores = first[:, torch.tensor([s[0] for s in seqs], device=device)]  # (n, m)
+    longest = max(len(s) for s in seqs)
+    if longest == 1:
+        return scores.cpu()
+    cache = out.cache
+    cache.batch_repeat_interleave(m)  # row i*m + j continues prompt i with sequence j
+    feed, feed_mask = _pad([s[:-1] for s in seqs], pad_id)  # (m, longest-1): tokens fed after the prompt
+    want, _ = _pad([s[1:] for s in seqs], 0)  # (m, longest-1): tokens they predict
+    feed, feed_mask, want = feed.repeat(n, 1), feed_mask.repeat(n, 1), want.repeat(n, 1)  # (n*m, longest-1)
+    full_mask = torch.cat([mask.repeat_interleave(m, 0), feed_mask], dim=1)  # (n*m, prompt + longest-1)
+    start = mask.sum(-1).repeat_interleave(m)[:, None]  # (n*m, 1): first position after each prompt
+    cont_pos = start + torch.arange(longest - 1)[None, :]
+    logits = model(input_ids=feed.to(device), attention_mask=full_mask.to(device),
+                   position_ids=cont_pos.to(device), cache=cache, use_cache=True).logits.float()
+    logp = logits.log_softmax(-1).gather(-1, want.to(device)[..., None]).squeeze(-1)  # (n*m, longest-1)
+    rest = (logp * feed_mask.to(device)).sum(-1).view(n, m)
+    return (scores + rest).cpu()
+
+
+@torch.inference_mode()
+def seq2seq_rank_scores(model: Any, prompts: Sequence[Sequence[int]],
+                        seqs: Sequence[Sequence[int]], pad_id: int, start_id: int) -> torch.Tensor:
+    """Summed log-probs (n_prompts, n_seqs) of every target given every input; the encoder runs once."""
+    device = _device(model)
+    n, m = len(prompts), len(seqs)
+    ids, mask = _pad(prompts, pad_id)
+    mask = mask.to(device)
+    encoded = model.get_encoder()(input_ids=ids.to(device), attention_mask=mask)
+    hidden = encoded.last_hidden_state.repeat_interleave(m, 0)  # (n*m, seq, d_model)
+    feed, feed_mask = _pad([(start_id, *s[:-1]) for s in seqs], pad_id)  # (m, longest): decoder inputs
+    want, _ = _pad(seqs, 0)
+    feed, feed_mask, want = feed.repeat(n, 1), feed_mask.repeat(n, 1), want.repeat(n, 1)  # (n*m, longest)
+    logits = model(encoder_outputs=BaseModelOutput(last_hidden_state=hidden),
+                   attention_mask=mask.repeat_interleave(m, 0), decoder_input_ids=feed.to(device),
+                   decoder_attention_mask=feed_mask.to(device)).logits.float()
+    logp = logits.log_softmax(-1).gather(-1, want.to(device)[..., None]).squeeze(-1)  # (n*m, longest)
+    return (logp * feed_mask.to(device)).sum(-1).view(n, m).cpu()
+
+
+def label_log_scores(seq_scores: torch.Tensor, lengths: Sequence[int], owner: Sequence[int], num_labels: int,
+                     score: str = "sum") -> torch.Tensor:
+    """(n, K) label scores from (n, m) summed sequence log-probs.
+
+    score='mean' divides each sequence's sum by its token count first. A label with several
+    sequences gets the log of their mean probability (one sequence: its own score).
+    """
+    if score == "mean":
+        seq_scores = seq_scores / torch.tensor(list(lengths), dtype=seq_scores.dtype)[None, :]
+    owner_t = torch.tensor(list(owner))
+    cols = []
+    for k in range(num_labels):
+        part = seq_scores[:, owner_t == k]  # (n, words of label k)
+        cols.append(torch.logsumexp(part, dim=1) - math.log(part.shape[1]))
+    return torch.stack(cols, dim=1)
+
+
+@register_method("next_token")
+class NextTokenMethod:
+    """Train the label words as next tokens with a masked loss; predict by rank scoring."""
+
+    name = "next_token"
+    trains = True
+
+    def __init__(self, *, cfg: Config, data: TaskData, backbone: Backbone | None = None) -> None:
+        m = cfg.method
+        self.cfg, self.label_names, self.is_pair = cfg, tuple(data.label_names), bool(data.is_pair)
+        if backbone is None:
+            backbone = load_backbone(cfg.model, for_lm=True)  # refuses encoders itself
+        self.backbone, self.family = backbone, backbone.family
+        if self.family == "encoder":
+            raise SettingError(
+                "method.kind", f"'{self.name}': {cfg.model.checkpoint} is an encoder-only checkpoint; it has no "
+                "next-token output layer to score label words with. Use method.kind: head for it, or choose a "
+                "decoder or encoder-decoder checkpoint"
+            )
+        self.tokenizer, self.seq2seq = backbone.tokenizer, self.family == "encoder-decoder"
+        self.model: Any = backbone.model  # a transformers PreTrainedModel (or its peft wrapper)
+        if self.model.get_output_embeddings() is None:
+            raise HarnessError(f"{cfg.model.checkpoint}: loaded without its language-model output layer; "
+                               "load the backbone with for_lm=True")
+        tok = self.tokenizer
+        self.pad_id = next(i for i in (tok.pad_token_id, tok.eos_token_id, 0) if i is not None)
+        self.template = parse_template(m.template, key="method.template", allowed=("text", "text_a", "text_b", "demos"))
+        check_text_fields(self.template, is_pair=self.is_pair)
+        words = resolve_label_words(m.label_words, self.label_names)
+        lead, trail = special_tokens_around(tok)
+        self.max_length = clamp_max_length(backbone, cfg.train.max_length)
+        if self.seq2seq:  # label words are a target sequence of their own, closed as the tokenizer closes one
+            self.labels = tokenize_label_words(tok, words, self.label_names, context="", space=False, end_ids=trail)
+            limit = self.max_length
+        else:
+            space = wants_space(m.space_prefix, self.template.tail, tok)
+            end = (tok.eos_token_id,) if m.end_token and tok.eos_token_id is not None else ()
+            self.labels = tokenize_label_words(tok, words, self.label_names, context=self.template.tail,
+                                               space=space, end_ids=end)
+            limit, trail = self.max_length - self.labels.longest, ()  # a closing eos would end the prompt early
+        self.builder = PromptBuilder(self.template, tok, limit=limit, lead=lead, trail=trail,
+                                     limit_key="train.max_length")
+        self.seqs, self.owner = self.labels.variants(m.multi_word)
+        self.lm = self._adapt(m)
+        self.demos = ""
+
+    def _adapt(self, m: Any) -> Any:
+        """Apply method.freeze / method.lora; return the module to call for forward passes."""
+        if m.freeze == "backbone":
+            raise SettingError("method.freeze", "'backbone' would leave next_token nothing to train (the output layer "
+                               "is part of the language model); use 'none', 'embeddings' or method.lora")
+        if m.freeze == "embeddings":
+            self.model.get_input_embeddings().weight.requires_grad_(False)  # tied models freeze the output layer too
+        if m.lora is None:
+            return self.model
+        import peft
+        from transformers.pytorch_utils import Conv1D
+
+        lora = peft.LoraConfig(r=m.lora.r, lora_alpha=m.lora.alpha, lora_dropout=m.lora.dropout,
+                               target_modules=list(m.lora.targets) if m.lora.targets else None,
+                               task_type="SEQ_2_SEQ_LM" if self.seq2seq else "CAUSAL_LM",
+                               # GPT-2 stores its projections as Conv1D (transposed weights); peft must be told.
+                               fan_in_fan_out=any(isinstance(x, Conv1D) for x in self.model.modules()))
+        # peft draws the adapters' A matrices from the global stream: seed it locally, as the head method does.
+        with torch.random.fork_rng(devices=[]), warnings.catch_warnings():
+            torch.manual_seed(self.cfg.train.seed)
+            warnings.simplefilter("ignore", FutureWarning)  # peft calls a method transformers marks deprecated
+            try:
+                self.model = peft.get_peft_model(self.model, lora)
+            except ValueError as exc:
+                raise SettingError("method.lora.targets", f"{str(exc).splitlines()[0]}") from None
+        return self.model.get_base_model()  # the adapted model itself: takes `cache=` like any other
+
+    # -- Method protocol -------------------------------------------------------------------------
+
+    def cache_params(self) -> dict[str, Any]:
+        """What besides tokenizer, data and max_length changes `encode`'s output."""
+        m = self.cfg.method
+        return {"method": self.name, "template": m.template, "demos": self.demos, "family": self.family,
+                "label_ids": [[list(ids) for ids in per_label] for per_label in self.labels.ids]}
+
+    def encode(self, texts: Sequence[Any], labels: Sequence[int]) -> list[Encoded]:
+        """Prompt ids (+ gold label-word ids for decoders; as `target` for encoder-decoders). Label -1: none."""
+        out = []
+        extra_limit = len(self._demo_ids)
+        for text, y in zip(texts, labels, strict=True):
+            prompt = self.builder.build(text, self.demos, extra_limit=extra_limit)
+            target = self.labels.ids[y][0] if y >= 0 else ()
+            if self.seq2seq:
+                out.append(Encoded(prompt, int(y), {"prompt_len": len(prompt), "target": target}))
+            else:
+                out.append(Encoded(prompt + target, int(y), {"prompt_len": len(prompt)}))
+        return out
+
+    @property
+    def _demo_ids(self) -> tuple[int, ...]:
+        return tuple(self.tokenizer.encode(self.demos, add_special_tokens=False)) if self.demos else ()
+
+    def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
+        """Right-padded ids and mask, token targets (IGNORE_INDEX off the label words) and class labels."""
+        ids, mask = _pad([it.input_ids for it in items], self.pad_id)
+        if self.seq2seq:
+            targets, _ = _pad([(it.extra or {})["target"] for it in items], IGNORE_INDEX)
+        else:
+            targets = torch.full_like(ids, IGNORE_INDEX)
+            for i, it in enumerate(items):
+                start = (it.extra or {})["prompt_len"]
+                targets[i, start : len(it)] = ids[i, start : len(it)]
+        return {"input_ids": ids, "attention_mask": mask, "target_ids": targets,
+                "labels": torch.tensor([it.label for it in items], dtype=torch.long)}
+
+    def loss(self, batch: dict[str, torch.Tensor]) -> torch.Tensor:
+        """Mean cross-entropy of the gold label words (decoder: masked LM loss; encoder-decoder: seq2seq)."""
+        if self.seq2seq:
+            return self.lm(input_ids=batch["input_ids"], attention_mask=batch["attention_mask"],
+                           labels=batch["target_ids"]).loss
+        logits = self.lm(input_ids=batch["input_ids"], attention_mask=batch["attention_mask"]).logits
+        return masked_lm_loss(logits, batch["target_ids"])
+
+    def label_scores(self, prompts: Sequence[Sequence[int]], batch_size: int) -> torch.Tensor:
+        """(n, K) label scores (sum or mean log-probs, words averaged) of prompt token sequences."""
+        order = sorted(range(len(prompts)), key=lambda i: len(prompts[i]))  # similar lengths pad less
+        out = torch.empty((len(prompts), len(self.label_names)))
+        lengths = [len(s) for s in self.seqs]
+        was_training = self.lm.training
+        self.lm.eval()
+        try:
+            for lo in range(0, len(order), batch_size):
+                idx = order[lo : lo + batch_size]
+                chunk = [prompts[i] for i in idx]
+                if self.seq2seq:
+                    start = self.lm.config.decoder_start_token_id
+                    raw = seq2seq_rank_scores(self.lm, chunk, self.seqs, self.pad_id,
+                                              self.pad_id if start is None else start)
+                else:
+                    raw = decoder_rank_scores(self.lm, chunk, self.seqs, self.pad_id)
+                out[idx] = label_log_scores(raw, lengths, self.owner, len(self.label_names), self.cfg.method.score)
+        finally:
+            self.lm.train(was_training)
+        return out
+
+    def predict_proba(self, items: Sequence[Encoded], batch_size: int) -> np.ndarray:
+        """(n, K) probabilities: softmax over labels of the rank scores."""
+        prompts = [it.input_ids[: (it.extra or {})["prompt_len"]] for it in items]
+        if not prompts:
+            return np.zeros((0, len(self.label_names)))
+        return self.label_scores(prompts, batch_size).double().softmax(-1).numpy()  # float64: tiny p survive
+
+    def trainable_parameters(self) -> list[tuple[str, torch.nn.Parameter]]:
+        return [(n, p) for n, p in self.model.named_parameters() if p.requires_grad]
+
+    def save(self, folder: Any) -> None:
+        """The model (adapters merged in) and tokenizer, plus INFO_FILE: what `load_exported` rebuilds from."""
+        from harness.files import atomic_write_text
+
+        folder = Path(folder)
+        folder.mkdir(parents=True, exist_ok=True)
+        # A merged copy: a plain checkpoint any transformers install reads, while this method keeps its adapters.
+        plain = copy.deepcopy(self.model).merge_and_unload() if self.cfg.method.lora is not None else self.model
+        plain.save_pretrained(folder)
+        self.tokenizer.save_pretrained(folder)
+        info = {**self.describe(), "labels": list(self.label_names), "is_pair": self.is_pair,
+                "max_length": self.max_length, "demos": self.demos,
+                "method_config": {k: v for k, v in config_to_dict(self.cfg)["method"].items() if k != "lora"}}
+        atomic_write_text(folder / INFO_FILE, json.dumps(info, indent=2, ensure_ascii=False))
+
+    @classmethod
+    def load_exported(cls, folder: Path) -> ExportedLM:
+        """Reload a saved run's model for `tiltyard predict` (see harness.runs.predict.load_exported)."""
+        path = Path(folder) / INFO_FILE
+        if not path.exists():
+            raise HarnessError(f"{folder} holds no exported next_token/prompt model ({INFO_FILE} is missing)")
+        info = json.loads(path.read_text(encoding="utf-8"))
+        method = {**info["method_config"], "shots": 0}  # the saved demonstrations are restored below
+        cfg = config_from_dict({"task": {"name": "exported", "train": "-"}, "model": {"checkpoint": str(folder)},
+                                "method": method, "train": {"max_length": info["max_length"]}})
+        empty = Split("train", (), (), ())
+        data = TaskData(empty, empty, empty, tuple(info["labels"]), bool(info["is_pair"]))
+        m = cls(cfg=cfg, data=data, backbone=load_backbone(cfg.model, for_lm=True))
+        m.demos = info["demos"]
+        return ExportedLM(m)
+
+    def describe(self) -> dict[str, Any]:
+        m = self.cfg.method
+        total = sum(p.numel() for p in self.model.parameters())
+        return {
+            "kind": self.name, "family": self.family, "template": m.template, "score": m.score,
+            "multi_word": m.multi_word, "space_prefix": m.space_prefix, "space_added": self.labels.space,
+            "end_token": m.end_token, "label_words": self.labels.describe(self.label_names, self.tokenizer),
+            "parameters": total, "trainable_parameters": sum(p.numel() for _, p in self.trainable_parameters()),
+        }
+
+
+class ExportedLM:
+    """A reloaded next_token/prompt model: `label_names` and `predict_proba(texts)`."""
+
+    def __init__(self, method: NextTokenMethod) -> None:
+        self.method, self.label_names = method, method.label_names
+
+    def predict_proba(self, texts: Sequence[Any], batch_size: int = 32) -> np.ndarray:
+        return self.method.predict_proba(self.method.encode(texts, [-1] * len(texts)), batch_size)

@@ -1,0 +1,379 @@
+"""Sweeps: grid expansion, exclusions, shards, resuming a killed sweep, failures, data changes, curves."""
+
+from __future__ import annotations
+
+import csv
+import itertools
+import json
+import re
+import shutil
+import signal
+import textwrap
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from harness.cli import main
+from harness.commands import sweep_command
+from harness.config import Config, load_config
+from harness.errors import HarnessError
+from harness.experiments.sweep import expand_sweep, parse_shard, run_sweep
+from harness.files import file_sha256
+from harness.runs import run as runner
+from harness.runs.folders import read_status, run_id
+from harness.train.checkpoints import Interrupted
+from tests.common import FERRY
+
+_REAL_EXECUTE = runner.execute_run  # kept before any test wraps it
+
+GRID = """\
+task:
+  name: ferry
+  train: {train}
+  dev: {dev}
+  test: {test}
+  id: id
+  max_rows: {rows}
+model:
+  checkpoint: toy:encoder
+method:
+  kind: head
+  template: "Q: {{text}} A:"
+train: {{epochs: 1, batch_size: 8, learning_rate: 1.0e-3, max_length: 32, seed: 1, threads: 1}}
+eval: {{bootstrap: 20}}
+output: {output}
+sweep:
+{sweep}
+"""
+
+
+def _write(tmp_path: Path, sweep: str, *, rows: int = 24, data: Path = FERRY, name: str = "grid.yaml") -> Path:
+    path = tmp_path / name
+    path.write_text(GRID.format(train=data / "train.csv", dev=data / "dev.csv", test=data / "test.csv", rows=rows,
+                                output=tmp_path / "runs", sweep=textwrap.indent(textwrap.dedent(sweep), "  ")),
+                    encoding="utf-8")
+    return path
+
+
+THREE_WAY = """\
+grid:
+  model.checkpoint: [toy:encoder, toy:decoder]
+  method: [{kind: head}, {kind: next_token}, {kind: prompt}]
+  train.seed: [1, 2]
+"""
+
+
+def test_expansion_order_count_and_stable_ids(tmp_path: Path) -> None:
+    runs = expand_sweep(load_config(_write(tmp_path, THREE_WAY)))
+    # Odometer order, as itertools.product documents: the last key advances fastest (Python docs).
+    expected = list(itertools.product(["toy:encoder", "toy:decoder"], ["head", "next_token", "prompt"], [1, 2]))
+    assert [(r.model.checkpoint, r.method.kind, r.train.seed) for r in runs] == expected
+    assert all(not r.sweep.grid and not r.sweep.exclude for r in runs)
+    ids = [run_id(r) for r in runs]
+    assert len(set(ids)) == 12
+    again = expand_sweep(load_config(_write(tmp_path, THREE_WAY, name="copy.yaml")))
+    assert [run_id(r) for r in again] == ids  # same settings -> same ids, whatever the file is called
+
+
+def test_exclude_drops_exactly_the_matching_runs(tmp_path: Path) -> None:
+    all_ids = [run_id(r) for r in expand_sweep(load_config(_write(tmp_path, THREE_WAY)))]
+    one_rule = THREE_WAY + "exclude:\n  - {model.checkpoint: toy:encoder, method.kind: next_token}\n"
+    runs = expand_sweep(load_config(_write(tmp_path, one_rule)))
+    assert len(runs) == 10
+    assert not any(r.model.checkpoint == "toy:encoder" and r.method.kind == "next_token" for r in runs)
+    assert [run_id(r) for r in runs] == [i for i in all_ids if i in {run_id(r) for r in runs}]
+    two_rules = one_rule + "  - {model.checkpoint: toy:encoder, method.kind: prompt}\n"
+    runs = expand_sweep(load_config(_write(tmp_path, two_rules)))
+    assert [(r.model.checkpoint, r.method.kind) for r in runs].count(("toy:encoder", "head")) == 2
+    assert len(runs) == 8
+    # a rule can name a default the grid never sets: train.epochs is 1 in every run, so this drops all seed-2 runs only
+    seed_rule = THREE_WAY + "exclude:\n  - {train.seed: 2, train.epochs: 1}\n"
+    assert [r.train.seed for r in expand_sweep(load_config(_write(tmp_path, seed_rule)))] == [1] * 6
+
+
+def test_method_block_replaces_the_whole_block(tmp_path: Path) -> None:
+    cfg = load_config(_write(tmp_path, "grid:\n  method: [{kind: head, pooling: mean}, {kind: prompt, shots: 2}]\n"))
+    head, prompt = expand_sweep(cfg)
+    assert (head.method.kind, head.method.pooling) == ("head", "mean")
+    # the base file's template is not carried into the blocks: each block is complete on its own
+    assert prompt.method.shots == 2 and prompt.method.template != cfg.method.template
+    assert head.method.template == prompt.method.template
+
+
+def test_arms_carry_settings_together_and_cross_the_grid(tmp_path: Path) -> None:
+    sweep = """\
+arms:
+  - {model.checkpoint: toy:encoder, train.learning_rate: 1.0e-3}
+  - {model.checkpoint: toy:decoder, method.kind: next_token, train.epochs: 2}
+grid:
+  train.seed: [1, 2]
+"""
+    runs = expand_sweep(load_config(_write(tmp_path, sweep)))
+    got = [(r.model.checkpoint, r.method.kind, r.train.learning_rate, r.train.epochs, r.train.seed) for r in runs]
+    assert got == [("toy:encoder", "head", 1.0e-3, 1.0, 1), ("toy:encoder", "head", 1.0e-3, 1.0, 2),
+                   ("toy:decoder", "next_token", 1.0e-3, 2.0, 1), ("toy:decoder", "next_token", 1.0e-3, 2.0, 2)]
+    with pytest.raises(HarnessError, match=r"sweep.arms.*arm 2: 'train.epoch' is not a config key"):
+        load_config(_write(tmp_path, "arms:\n  - {train.seed: 3}\n  - {train.epoch: 2}\n"))
+    with pytest.raises(HarnessError, match=r"arm 1 is invalid: .*train.batch_size"):
+        load_config(_write(tmp_path, "arms:\n  - {train.batch_size: 0}\n"))
+
+
+@pytest.mark.parametrize(("sweep", "words"), [
+    ("grid:\n  train.lerning_rate: [1.0e-3]\n", ["sweep.grid.train.lerning_rate", "did you mean 'train.learning_rate'"]),
+    ("grid:\n  trian.epochs: [1]\n", ["sweep.grid.trian.epochs", "is not a config key", "did you mean 'train'"]),
+    ("grid:\n  method: [{kind: head, polling: mean}]\n", ["sweep.grid.method", "method.polling"]),
+    ("grid:\n  train.seed: []\n", ["sweep.grid.train.seed", "non-empty list"]),
+    ("grid:\n  train.seed: [1]\nexclude:\n  - {train.sed: 1}\n", ["sweep.exclude[0]", "train.sed"]),
+])
+def test_bad_sweep_key_is_a_config_error_naming_it(tmp_path: Path, sweep: str, words: list[str]) -> None:
+    with pytest.raises(HarnessError) as err:
+        load_config(_write(tmp_path, sweep))
+    for word in words:
+        assert word in str(err.value)
+
+
+def test_repeated_combination_is_an_error(tmp_path: Path) -> None:
+    with pytest.raises(HarnessError, match="combinations 1 and 2 give the same run"):
+        expand_sweep(load_config(_write(tmp_path, "grid:\n  train.seed: [3, 3]\n")))
+
+
+def test_shard_syntax_is_checked() -> None:
+    assert parse_shard("1/3") == (1, 3) and parse_shard(" 0 / 2 ") == (0, 2) and parse_shard(None) is None
+    for bad in ("3/2", "2/2", "x", "1/0", "-1/2", "1/2/3", ""):
+        with pytest.raises(HarnessError, match="--shard"):
+            parse_shard(bad)
+
+
+# ----- running sweeps -----------------------------------------------------------------------------
+
+
+def _fake_runner(calls: list[str]) -> Any:
+    """Stands in for runner.execute_run where only the sweep's bookkeeping is under test: records the call
+    and marks the run finished, with a measured training time of 3.0 s."""
+    from harness.files import atomic_write_json
+    from harness.runs.folders import run_folder, write_status
+
+    def execute(cfg: Config, *, resume: bool = False, overwrite: bool = False, log: Any = print, **_: Any) -> Path:
+        calls.append(run_id(cfg))
+        folder = run_folder(cfg)
+        folder.mkdir(parents=True, exist_ok=True)
+        atomic_write_json(folder / "metrics.json", {"metrics": {}, "cost": {"train_seconds": 3.0}})
+        write_status(folder, "finished")
+        return folder
+
+    return execute
+
+
+def test_shards_run_every_run_exactly_once(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    path = _write(tmp_path, THREE_WAY)
+    cfg = load_config(path)
+    calls: list[str] = []
+    monkeypatch.setattr(runner, "execute_run", _fake_runner(calls))
+    first = run_sweep(cfg, "grid", shard=parse_shard("0/2"), compare=False, log=lambda _: None)
+    assert first["picked"] == [0, 2, 4, 6, 8, 10]
+    run_sweep(cfg, "grid", shard=parse_shard("1/2"), compare=False, log=lambda _: None)
+    ids = [run_id(r) for r in expand_sweep(cfg)]
+    assert sorted(calls) == sorted(ids) and len(calls) == len(set(calls))
+    index = json.loads((tmp_path / "runs" / "ferry" / "sweeps" / "grid" / "sweep.json").read_text())
+    assert [r["id"] for r in index["runs"]] == ids and {r["state"] for r in index["runs"]} == {"finished"}
+    with pytest.raises(HarnessError, match="--shard '2/2'"):
+        sweep_command(path, [], shard="2/2")
+
+
+def test_dry_run_lists_runs_and_honest_costs(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                             capsys: pytest.CaptureFixture[str]) -> None:
+    sweep = "grid:\n  method: [{kind: head}, {kind: prompt}]\n  train.seed: [1, 2, 3]\n"
+    path = _write(tmp_path, sweep, rows=24)
+    assert main(["sweep", str(path), "--dry-run"]) == 0
+    out = capsys.readouterr().out
+    for run in expand_sweep(load_config(path)):  # id, checkpoint, method, seed, training rows, state
+        assert re.search(rf"{run_id(run)} +toy:encoder +{run.method.kind} +{run.train.seed} +24 new ", out)
+    assert out.count(" new ") == 6  # no finished run to measure from yet:
+    assert sum(line.endswith(" unknown") for line in out.splitlines()) == 3
+    assert "0 s (no training)" in out and "3 runs of unknown cost" in out
+    assert not (tmp_path / "runs").exists()  # a dry run writes nothing
+    calls: list[str] = []
+    monkeypatch.setattr(runner, "execute_run", _fake_runner(calls))
+    run_sweep(load_config(path), "grid", shard=(0, 6), compare=False, log=lambda _: None)  # the first head run only
+    assert sweep_command(path, [], dry_run=True) == 0
+    out = capsys.readouterr().out
+    assert "3.0 s measured" in out
+    # same checkpoint, method and length, same 24 rows x 1 epoch: the measured 3.0 s carries over, labelled so
+    assert out.count("~3.0 s estimated from 1 finished run(s) like it") == 2
+    assert "unknown" not in out
+
+
+def _counting(calls: list[tuple[str, bool]], hook: Any = None) -> Any:
+    """The real runner, with every call recorded as (run id, resume); `hook(n, cfg)` may act on call n (1-based)."""
+    def execute(cfg: Config, **kw: Any) -> Path:
+        calls.append((run_id(cfg), kw.get("resume", False)))
+        if hook is not None:
+            kw = hook(len(calls), cfg, kw)
+        return _REAL_EXECUTE(cfg, **kw)
+
+    return execute
+
+
+def _sigint_on_first_step(n: int, cfg: Config, kw: dict[str, Any]) -> dict[str, Any]:
+    if n == 3:  # a real Ctrl-C during training of run 3: the runner saves a checkpoint and stops
+        kw["on_step"] = lambda step: signal.raise_signal(signal.SIGINT)
+    return kw
+
+
+def test_killed_sweep_resumes_without_redoing_finished_runs(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2, 3, 4]\n", rows=24)
+    cfg = load_config(path)
+    ids = [run_id(r) for r in expand_sweep(cfg)]
+    folders = [tmp_path / "runs" / "ferry" / i for i in ids]
+    calls: list[tuple[str, bool]] = []
+    monkeypatch.setattr(runner, "execute_run", _counting(calls, _sigint_on_first_step))
+    with pytest.raises(Interrupted):
+        run_sweep(cfg, "grid", compare=False, log=lambda _: None)
+    assert [c[0] for c in calls] == ids[:3]
+    index = json.loads((tmp_path / "runs" / "ferry" / "sweeps" / "grid" / "sweep.json").read_text())
+    # written even though the sweep died
+    assert [r["state"] for r in index["runs"]] == ["finished", "finished", "interrupted", "new"]
+    assert (folders[2] / "checkpoints" / "last.pt").is_file()
+    before = [(f / "status.json").read_bytes() for f in folders[:2]]
+
+    calls.clear()
+    monkeypatch.setattr(runner, "execute_run", _counting(calls))
+    summary = run_sweep(cfg, "grid", compare=False, log=lambda _: None)
+    # runs 1-2 were not executed again (not even called), and their status files are byte-identical
+    assert [c[0] for c in calls] == ids[2:]
+    assert [(f / "status.json").read_bytes() for f in folders[:2]] == before
+    assert [c[1] for c in calls] == [True, False]  # the interrupted run resumes from its checkpoint
+    assert read_status(folders[2])["resumed"] is True
+    assert summary["failed"] == [] and all(read_status(f)["state"] == "finished" for f in folders)
+
+
+@pytest.mark.parametrize("stop", [KeyboardInterrupt, SystemExit])
+def test_sweep_stopped_between_runs_writes_its_index_and_picks_up(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, stop: type[BaseException]
+) -> None:
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2, 3, 4]\n")
+    cfg = load_config(path)
+    ids = [run_id(r) for r in expand_sweep(cfg)]
+    calls: list[str] = []
+    fake = _fake_runner(calls)
+
+    def stop_on_third(cfg: Config, **kw: Any) -> Path:
+        if len(calls) == 2:
+            raise stop()  # the process is told to stop between two runs
+        return fake(cfg, **kw)
+
+    monkeypatch.setattr(runner, "execute_run", stop_on_third)
+    with pytest.raises(stop):
+        run_sweep(cfg, "grid", compare=False, log=lambda _: None)
+    index = json.loads((tmp_path / "runs" / "ferry" / "sweeps" / "grid" / "sweep.json").read_text())
+    assert [r["state"] for r in index["runs"]] == ["finished", "finished", "new", "new"]
+    monkeypatch.setattr(runner, "execute_run", fake)
+    assert run_sweep(cfg, "grid", compare=False, log=lambda _: None)["failed"] == []
+    assert calls == ids  # each run executed exactly once over the two invocations
+
+
+def test_a_failing_run_does_not_stop_the_others(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                capsys: pytest.CaptureFixture[str]) -> None:
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2]\n")
+    runs = expand_sweep(load_config(path))
+    folders = [tmp_path / "runs" / "ferry" / run_id(r) for r in runs]
+    calls: list[tuple[str, bool]] = []
+
+    def crash_first(n: int, cfg: Config, kw: dict[str, Any]) -> dict[str, Any]:
+        if n == 1:  # training of the first run raises, as a bug in a method would
+            kw["on_step"] = lambda step: (_ for _ in ()).throw(RuntimeError("simulated crash"))
+        return kw
+
+    monkeypatch.setattr(runner, "execute_run", _counting(calls, crash_first))
+    assert sweep_command(path, []) == 1  # documented: 1 when some run failed
+    assert [c[0] for c in calls] == [run_id(r) for r in runs]  # the second run still ran
+    assert "failed: RuntimeError: simulated crash" in capsys.readouterr().out
+    states = [read_status(f) for f in folders]
+    assert [s["state"] for s in states] == ["failed", "finished"]
+    assert "simulated crash" in states[0]["error"]  # recorded by the runner in status.json
+    sweep_dir = tmp_path / "runs" / "ferry" / "sweeps" / "grid"
+    assert [r["state"] for r in json.loads((sweep_dir / "sweep.json").read_text())["runs"]] == ["failed", "finished"]
+    comparison = json.loads((sweep_dir / "comparison.json").read_text())
+    assert comparison["runs"] == 1  # the failed run is listed as left out, never averaged in
+    assert [(i["path"], i["state"]) for i in comparison["incomplete"]] == [(str(folders[0]), "failed")]
+    # run again: only the failed run is attempted, and now everything finished
+    assert sweep_command(path, [], compare=False) == 0
+    assert [c[0] for c in calls[2:]] == [run_id(runs[0])]
+    assert capsys.readouterr().out.count(" done") == 1
+
+
+def test_data_file_changed_mid_sweep_is_caught_and_named(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                         capsys: pytest.CaptureFixture[str]) -> None:
+    data = tmp_path / "data"
+    shutil.copytree(FERRY, data)
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2, 3]\n", data=data)
+    runs = expand_sweep(load_config(path))
+    folders = [tmp_path / "runs" / "ferry" / run_id(r) for r in runs]
+    train_csv = data / "train.csv"
+
+    def edit_after_first(n: int, cfg: Config, kw: dict[str, Any]) -> dict[str, Any]:
+        if n == 2:  # someone re-exports the training file while the sweep runs
+            train_csv.write_text(train_csv.read_text(encoding="utf-8").replace(",refund\n", ",schedule\n", 1),
+                                 encoding="utf-8")
+        return kw
+
+    calls: list[tuple[str, bool]] = []
+    monkeypatch.setattr(runner, "execute_run", _counting(calls, edit_after_first))
+    assert run_sweep(load_config(path), "grid", compare=False, log=print)["failed"] == [1, 2]
+    out = capsys.readouterr().out
+    assert f"data file {train_csv.resolve()}" in out and "not mixed into the sweep" in out
+    assert f"failed: data file {train_csv.resolve()} changed since the sweep started" in out
+    assert [read_status(f)["state"] for f in folders] == ["finished", "failed", "failed"]
+    assert str(train_csv.resolve()) in read_status(folders[2])["error"]
+    # a fresh sweep on the new file redoes the run made on the old one too, so none are mixed
+    calls.clear()
+    monkeypatch.setattr(runner, "execute_run", _counting(calls))
+    assert run_sweep(load_config(path), "grid", compare=False, log=print)["failed"] == []
+    assert "an earlier attempt read other data" in capsys.readouterr().out
+    digests = {json.loads((f / "data.json").read_text())["files"][str(train_csv)] for f in folders}
+    assert digests == {file_sha256(train_csv)}
+
+
+def test_train_size_sweep_draws_a_data_efficiency_curve(tmp_path: Path) -> None:
+    sweep = """\
+    grid:
+      model.checkpoint: [toy:decoder]
+      method: [{kind: head}, {kind: next_token, template: "Q: {text} A:"}]
+      task.train_size: [12, 30]
+      train.seed: [1, 2]
+    """
+    path = _write(tmp_path, sweep, rows=40)
+    assert sweep_command(path, []) == 0
+    sweep_dir = tmp_path / "runs" / "ferry" / "sweeps" / "grid"
+    png = (sweep_dir / "data_efficiency.png").read_bytes()
+    assert png.startswith(b"\x89PNG\r\n\x1a\n")  # the PNG signature (PNG specification, section 5.2)
+    with (sweep_dir / "data_efficiency.csv").open(encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 4 and {int(r["train_examples"]) for r in rows} == {12, 30}
+    assert all(int(r["seeds"]) == 2 for r in rows)
+    # each point is the seed mean of the runs' own macro-F1 (numpy mean over metrics.json values)
+    index = json.loads((sweep_dir / "sweep.json").read_text())
+    for row in rows:
+        kind = "head" if " head " in f" {row['series']} " else "next_token"
+        values = [json.loads((Path(r["path"]) / "metrics.json").read_text())["metrics"]["macro_f1"]
+                  for r in index["runs"] if r["method"] == kind and r["train_size"] == int(row["train_examples"])]
+        assert len(values) == 2 and float(row["macro_f1_mean"]) == pytest.approx(float(np.mean(values)))
+
+
+def test_a_data_finding_is_logged_once_per_sweep_but_kept_in_every_run(tmp_path: Path,
+                                                                       caplog: pytest.LogCaptureFixture) -> None:
+    data = tmp_path / "data"
+    shutil.copytree(FERRY, data)
+    train = data / "train.csv"
+    rows = train.read_text(encoding="utf-8").splitlines()
+    train.write_text("\n".join([*rows, rows[1].replace("fm-train-0001", "fm-train-dup")]) + "\n", encoding="utf-8")
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2]\n", data=data, rows=400)
+    with caplog.at_level("WARNING", logger="harness"):
+        assert sweep_command(path, [], compare=False) == 0
+    shown = [r.getMessage() for r in caplog.records if r.getMessage().startswith("data: ")]
+    assert len(shown) == len(set(shown)) >= 1  # the repeated training text is reported, once
+    for r in expand_sweep(load_config(path)):
+        findings = json.loads((tmp_path / "runs" / "ferry" / run_id(r) / "data.json").read_text())["audit"]["findings"]
+        assert set(shown) <= {f"data: {f}" for f in findings}  # each run still records it

@@ -96,7 +96,7 @@ def _wrapped(method: Any, wrapper: str | None) -> tuple[Any, Any, list[tuple[int
 
     def recording_collate(items: Any) -> dict[str, torch.Tensor]:
         if wrapper == "exact_widths":
-            from harness.methods.head import collate_encoded
+            from harness.methods.batches import collate_encoded
 
             batch = collate_encoded(items, method.tokenizer.pad_token_id, method.uses_type_ids)  # no limit: no rounding
         else:
@@ -154,7 +154,8 @@ def _timed(fn: Callable[[], Any]) -> float:
 def _eval_variants(job: dict[str, Any], data: Any) -> dict[str, list[float]]:
     """Seconds of one test-slice evaluation per variant: the harness path against three simpler loops."""
     from bench.jobs import build_config
-    from harness.methods.head import HeadMethod, predict_batches
+    from harness.methods.batches import predict_batches
+    from harness.methods.head import HeadMethod
     from harness.train.loop import set_threads
 
     with tempfile.TemporaryDirectory(prefix="bench-eval-") as tmp:

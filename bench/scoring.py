@@ -3,7 +3,7 @@
 The prompts are question-type test questions in a template of our own; the label sequences are
 five invented answer-type phrases cut to exactly 3 tokens each (and, for the single-token case,
 5 distinct one-token words). Contenders, timed over the same length-sorted batches:
-- `cached`: `harness.methods.next_token.decoder_rank_scores` (prompts once, their key/value cache reused);
+- `cached`: `harness.methods.rank_scoring.decoder_rank_scores` (prompts once, their key/value cache reused);
 - `per_label`: every label its own forward pass over prompt + label words, left-padded so the
   label positions line up, with the output layer on those positions only (the fair version of
   the obvious loop);
@@ -35,12 +35,13 @@ SINGLE_WORDS = (" short", " why", " thing", " who", " where")
 def per_label_scores(model: Any, prompts: Sequence[Sequence[int]], seqs: Sequence[Sequence[int]],
                      pad_id: int) -> torch.Tensor:
     """Summed log-probs (n_prompts, n_seqs), one full forward pass over prompt + sequence per label."""
-    from harness.methods.next_token import _pad
+    from harness.methods.batches import pad_batch
 
     device = next(model.parameters()).device
     out = torch.empty((len(prompts), len(seqs)))
     for j, seq in enumerate(seqs):
-        ids, mask = _pad([(*p, *seq) for p in prompts], pad_id, left=True)  # rows end together
+        batch = pad_batch([(*p, *seq) for p in prompts], pad_id, side="left")  # rows end together
+        ids, mask = batch["input_ids"], batch["attention_mask"]
         positions = (mask.cumsum(-1) - 1).clamp(min=0)
         k = len(seq)
         logits = model(input_ids=ids.to(device), attention_mask=mask.to(device), position_ids=positions.to(device),
@@ -65,11 +66,11 @@ def _timed(fn: Callable[[], Any]) -> tuple[float, Any]:
 
 def run_scoring(job: dict[str, Any]) -> dict[str, Any]:
     """Seconds per contender (ABBA-alternated repeats), the largest score difference, sizes."""
-    import harness.methods.next_token as nt
+    import harness.methods.rank_scoring as rs
     from harness.config import ModelConfig, TaskConfig
     from harness.data.task import load_task
-    from harness.methods.head import predict_batches
-    from harness.methods.pooling import ClassifierHead, HeadModel, LastPooling, pad_batch
+    from harness.methods.batches import pad_batch, predict_batches
+    from harness.methods.pooling import ClassifierHead, HeadModel, LastPooling
     from harness.models.backbones import load_backbone
     from harness.train.loop import set_threads
 
@@ -85,21 +86,13 @@ def run_scoring(job: dict[str, Any]) -> dict[str, Any]:
     config = model.config
     head = HeadModel(model.base_model, LastPooling(), ClassifierHead(config.hidden_size, len(one), dropout=0.1, seed=0),
                      "decoder")
-    no_trim = getattr(nt, "_last_position_only", None)
-
-    def all_positions() -> torch.Tensor:
-        if no_trim is not None:
-            nt._last_position_only = lambda model: {}  # the output layer on every position, as before
-        try:
-            return torch.cat([nt.decoder_rank_scores(model, c, one, pad) for c in chunks])
-        finally:
-            if no_trim is not None:
-                nt._last_position_only = no_trim
+    def all_positions() -> torch.Tensor:  # the output layer on every prompt position
+        return torch.cat([rs.decoder_rank_scores(model, c, one, pad, last_position_only=False) for c in chunks])
 
     contenders: dict[str, Callable[[], Any]] = {
-        "cached": lambda: torch.cat([nt.decoder_rank_scores(model, c, three, pad) for c in chunks]),
+        "cached": lambda: torch.cat([rs.decoder_rank_scores(model, c, three, pad) for c in chunks]),
         "per_label": lambda: torch.cat([per_label_scores(model, c, three, pad) for c in chunks]),
-        "single_token": lambda: torch.cat([nt.decoder_rank_scores(model, c, one, pad) for c in chunks]),
+        "single_token": lambda: torch.cat([rs.decoder_rank_scores(model, c, one, pad) for c in chunks]),
         "single_token_all_positions": all_positions,
         "head_pass": lambda: predict_batches(head, (pad_batch(c, pad) for c in chunks),
                                              lambda b: head(b["input_ids"], b["attention_mask"])),

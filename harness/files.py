@@ -22,6 +22,7 @@ from harness.errors import HarnessError
 
 __all__ = [
     "atomic_folder",
+    "cache_dir",
     "atomic_write_bytes",
     "atomic_write_json",
     "atomic_write_text",
@@ -122,3 +123,10 @@ def file_sha256(path: Path) -> str:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             digest.update(chunk)
     return digest.hexdigest()
+
+
+def cache_dir() -> Path:
+    """The tool's cache folder (toy checkpoints, converted assets, token cache): $HARNESS_CACHE, else
+    ~/.cache/harness."""
+    env = os.environ.get("HARNESS_CACHE", "").strip()
+    return Path(env).expanduser() if env else Path.home() / ".cache" / "harness"

@@ -74,7 +74,7 @@ def test_padded_tokens_count_every_batch_at_its_longest_row():
 
 
 def test_padded_tokens_follow_the_widths_of_the_head_collate():
-    from harness.methods.head import batch_width, collate_encoded
+    from harness.methods.batches import batch_width, collate_encoded
     from harness.methods.registry import Encoded
 
     # The count must equal the tensor sizes the head method's own collate produces (max_length 40).
@@ -162,7 +162,7 @@ def test_a_variant_run_on_every_seed_gets_its_own_memory_speed_and_accuracy_targ
 def test_per_label_reference_scores_equal_unpadded_library_log_probs(toy_paths: dict[str, Path]):
     from transformers import AutoModelForCausalLM
 
-    from harness.methods.next_token import decoder_rank_scores
+    from harness.methods.rank_scoring import decoder_rank_scores
 
     # The benchmark's per-label scorer must compute the same numbers as the cached scorer, and both
     # must equal the library's model run on each prompt + label alone (no padding), log-softmaxed.

@@ -12,7 +12,14 @@
 
 from harness.config.build import config_from_dict, config_to_dict
 from harness.config.dotted import get_dotted, set_dotted
-from harness.config.load import dump_config, field_docs, key_location, load_config, parse_override
+from harness.config.load import (
+    config_folder,
+    dump_config,
+    field_docs,
+    key_location,
+    load_config,
+    parse_override,
+)
 from harness.config.schema import (
     Config,
     EvalConfig,
@@ -25,21 +32,7 @@ from harness.config.schema import (
 )
 
 __all__ = [
-    "Config",
-    "EvalConfig",
-    "LoraConfig",
-    "MethodConfig",
-    "ModelConfig",
-    "SweepConfig",
-    "TaskConfig",
-    "TrainConfig",
-    "config_from_dict",
-    "config_to_dict",
-    "dump_config",
-    "field_docs",
-    "get_dotted",
-    "key_location",
-    "load_config",
-    "parse_override",
-    "set_dotted",
+    "Config", "EvalConfig", "LoraConfig", "MethodConfig", "ModelConfig", "SweepConfig", "TaskConfig", "TrainConfig",
+    "config_folder", "config_from_dict", "config_to_dict", "dump_config", "field_docs", "get_dotted", "key_location",
+    "load_config", "parse_override", "set_dotted",
 ]

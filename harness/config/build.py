@@ -163,18 +163,23 @@ def config_from_dict(
     return cfg
 
 
+def _check_settable(key: str, place: str, verb: str) -> None:
+    """A key a sweep may set: a real config key outside `sweep` and `output` (`place` names where it was set)."""
+    if key.startswith("sweep") or key == "output":
+        raise HarnessError(f"{place}: '{key}' cannot be {verb}")
+    if key != "method":
+        try:
+            check_key(key)
+        except UnknownKeyError as exc:
+            raise HarnessError(f"{place}: '{key}' is not a config key; {exc.hint}") from None
+
+
 def _check_sweep(cfg: Config, where: Where) -> None:
     base = config_to_dict(cfg)
     for key, values in cfg.sweep.grid.items():
         if not isinstance(values, tuple) or not values:
             raise HarnessError(f"{where('sweep.grid.' + key)}: must be a non-empty list of values")
-        if key.startswith("sweep") or key == "output":
-            raise HarnessError(f"{where('sweep.grid.' + key)}: '{key}' cannot be swept")
-        if key != "method":
-            try:
-                check_key(key)
-            except UnknownKeyError as exc:
-                raise HarnessError(f"{where('sweep.grid.' + key)}: '{key}' is not a config key; {exc.hint}") from None
+        _check_settable(key, where("sweep.grid." + key), "swept")
         for value in values:
             trial = set_dotted(base, key, thaw(value), where("sweep.grid." + key))
             try:
@@ -184,14 +189,7 @@ def _check_sweep(cfg: Config, where: Where) -> None:
     for i, arm in enumerate(cfg.sweep.arms):
         trial = base
         for key, value in arm.items():
-            if key.startswith("sweep") or key == "output":
-                raise HarnessError(f"{where('sweep.arms')}: arm {i + 1}: '{key}' cannot be set by an arm")
-            if key != "method":
-                try:
-                    check_key(key)
-                except UnknownKeyError as exc:
-                    raise HarnessError(f"{where('sweep.arms')}: arm {i + 1}: '{key}' is not a config key; "
-                                       f"{exc.hint}") from None
+            _check_settable(key, f"{where('sweep.arms')}: arm {i + 1}", "set by an arm")
             trial = set_dotted(trial, key, thaw(value), where("sweep.arms"))
         try:
             config_from_dict(trial, source=cfg.source, check_sweep=False)

@@ -23,7 +23,7 @@ from harness.config.schema import Config
 from harness.config.yaml_lines import collect_lines, read_yaml
 from harness.errors import HarnessError
 
-__all__ = ["dump_config", "field_docs", "key_location", "load_config", "parse_override"]
+__all__ = ["config_folder", "dump_config", "field_docs", "key_location", "load_config", "parse_override"]
 
 _EXPONENT = re.compile(r"[-+]?\d+(\.\d*)?[eE][-+]?\d+")
 
@@ -91,6 +91,13 @@ def key_location(cfg: Config, key: str) -> str:
     if in_file is missing and key not in lines:
         return f"'{key}' (its default) in {cfg.source}"
     return f"'{key}' (set by --set or the sweep) in {cfg.source}"
+
+
+def config_folder(cfg: Config) -> Path | None:
+    """The folder of the config file (relative data paths are also looked up there); None for a config
+    not read from a file."""
+    path = Path(cfg.source)
+    return path.parent if path.is_file() else None
 
 
 def dump_config(cfg: Config) -> str:

@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 
 from harness.data.task import Split, TaskData, text_key
+from harness.files import atomic_write_json, atomic_write_text
 
 __all__ = ["audit_data", "render_audit", "suggest_max_length", "token_counter", "write_audit"]
 
@@ -149,8 +150,6 @@ def render_audit(report: dict[str, Any], source: str) -> str:
 
 def write_audit(report: dict[str, Any], source: str, folder: Path) -> tuple[Path, Path]:
     """Write audit.json and audit.md into `folder` atomically."""
-    from harness.files import atomic_write_json, atomic_write_text
-
     folder.mkdir(parents=True, exist_ok=True)
     atomic_write_json(folder / "audit.json", report)
     atomic_write_text(folder / "audit.md", render_audit(report, source))

@@ -7,7 +7,6 @@ can live with (duplicates, texts shared between splits) are counted by `harness.
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import json
 import math
@@ -19,14 +18,12 @@ from pathlib import Path
 from typing import Any
 
 from harness.config import TaskConfig
+from harness.data.readers import cell_text, read_rows
 from harness.errors import HarnessError
 from harness.files import file_sha256
+from harness.models.assets import resolve_data
 
-__all__ = ["Split", "TaskData", "text_key", "load_task", "read_rows", "stratified_carve", "subsample"]
-
-_FORMATS = {".csv": "csv", ".tsv": "tsv", ".tab": "tsv", ".jsonl": "jsonl", ".json": "jsonl",
-            ".parquet": "parquet", ".pq": "parquet"}
-
+__all__ = ["Split", "TaskData", "load_task", "read_rows", "split_paths", "stratified_carve", "subsample", "text_key"]
 
 @dataclass(frozen=True)
 class Split:
@@ -101,128 +98,37 @@ def text_key(text: str | tuple[str, str]) -> str:
     return json.dumps([" ".join(p.split()).casefold() for p in parts], ensure_ascii=False)
 
 
-def _format_of(path: Path, fmt: str) -> str:
-    if fmt != "auto":
-        return fmt
-    kind = _FORMATS.get(path.suffix.lower())
-    if kind is None:
-        raise HarnessError(
-            f"{path}: cannot tell the format from the extension '{path.suffix}'; "
-            "use .csv, .tsv, .jsonl or .parquet, or set task.format"
-        )
-    return kind
+@dataclass(frozen=True)
+class _RawSplit:
+    """One split as read, before the label set is fixed: labels are still names."""
+
+    ids: list[str]
+    texts: list[str | tuple[str, str]]
+    labels: list[str]
+    lines: list[int]
+    path: Path
 
 
-def _decode(path: Path) -> str:
-    raw = path.read_bytes()
-    if raw.startswith(b"\xef\xbb\xbf"):
-        raw = raw[3:]
-    try:
-        return raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        line = raw[: exc.start].count(b"\n") + 1
-        raise HarnessError(
-            f"{path} line {line}: byte 0x{raw[exc.start]:02x} is not valid UTF-8; re-save the file as UTF-8"
-        ) from None
-
-
-def read_rows(path: Path, fmt: str = "auto") -> tuple[list[dict[str, Any]], list[int]]:
-    """All rows of a data file as dicts, with the source line (or row number) of each."""
-    if not path.exists():
-        raise HarnessError(f"data file {path} does not exist")
-    if path.is_dir():
-        raise HarnessError(f"data file {path} is a folder; give the path of a CSV/TSV/JSONL/Parquet file")
-    kind = _format_of(path, fmt)
-    if kind == "parquet":
-        return _read_parquet(path)
-    text = _decode(path)
-    if kind == "jsonl":
-        return _read_jsonl(path, text)
-    return _read_delimited(path, text, "\t" if kind == "tsv" else ",")
-
-
-def _read_delimited(path: Path, text: str, delimiter: str) -> tuple[list[dict[str, Any]], list[int]]:
-    reader = csv.reader(text.splitlines(keepends=True), delimiter=delimiter, strict=True)
-    try:
-        header = next(reader)
-    except StopIteration:
-        raise HarnessError(f"{path} is empty; it needs a header row and at least one data row") from None
-    except csv.Error as exc:
-        raise HarnessError(f"{path} line 1: unreadable header ({exc})") from None
-    header = [h.strip() for h in header]
-    if len(set(header)) != len(header):
-        dup = [h for h, n in Counter(header).items() if n > 1]
-        raise HarnessError(f"{path} line 1: column {dup[0]!r} appears twice in the header")
-    rows, lines = [], []
-    while True:
-        start = reader.line_num + 1  # a quoted field may run over several lines; name where the row began
-        try:
-            row = next(reader)
-        except StopIteration:
-            break
-        except csv.Error as exc:
-            unclosed = "; a quote opened in it is never closed" if "end of data" in str(exc) else ""
-            raise HarnessError(f"{path} line {start}: malformed row ({exc}){unclosed}") from None
-        if not row or all(not c.strip() for c in row):
-            continue  # blank line
-        if len(row) != len(header):
-            raise HarnessError(
-                f"{path} line {reader.line_num}: {len(row)} fields where the header has {len(header)}; "
-                "quote fields that contain the delimiter"
-            )
-        rows.append(dict(zip(header, row, strict=True)))
-        lines.append(reader.line_num)
-    return rows, lines
-
-
-def _read_jsonl(path: Path, text: str) -> tuple[list[dict[str, Any]], list[int]]:
-    rows, lines = [], []
-    for n, line in enumerate(text.splitlines(), start=1):
-        if not line.strip():
+def split_paths(cfg: TaskConfig, base: Path | None = None) -> dict[str, Path]:
+    """The file of every split the task names: `asset:NAME` resolved, a relative path looked up in the
+    working folder first, then in `base` (the config's folder). Carved splits have no file."""
+    base = base or Path.cwd()
+    out: dict[str, Path] = {}
+    for name in ("train", "dev", "test"):
+        text = getattr(cfg, name)
+        if text is None:
             continue
-        try:
-            obj = json.loads(line)
-        except json.JSONDecodeError as exc:
-            raise HarnessError(f"{path} line {n}: not valid JSON ({exc.msg})") from None
-        if not isinstance(obj, dict):
-            raise HarnessError(f"{path} line {n}: expected a JSON object per line, got {type(obj).__name__}")
-        rows.append(obj)
-        lines.append(n)
-    return rows, lines
+        if text.startswith("asset:"):
+            out[name] = resolve_data(text[len("asset:"):])
+            continue
+        path = Path(text)
+        if not path.is_absolute() and not path.exists() and (base / path).exists():
+            path = base / path
+        out[name] = path
+    return out
 
 
-def _read_parquet(path: Path) -> tuple[list[dict[str, Any]], list[int]]:
-    # pyarrow directly (what datasets reads Parquet with): no cache folder, and no second line of
-    # error logging on stderr for a broken file.
-    import pyarrow.parquet as pq
-
-    try:
-        table = pq.read_table(path)
-    except Exception as exc:  # pyarrow raises many types for a broken file
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise HarnessError(f"{path}: not a readable Parquet file ({type(exc).__name__}: {reason})") from None
-    rows = table.to_pylist()
-    return rows, list(range(1, len(rows) + 1))
-
-
-def _cell(value: Any, where: str = "", column: str = "") -> str | None:
-    """A cell as text; None for missing values (empty, null, NaN). A list or mapping is an error."""
-    if isinstance(value, (dict, list, tuple)):
-        kind = "a mapping" if isinstance(value, dict) else "a list"
-        raise HarnessError(f"{where}: column {column!r} holds {kind} ({json.dumps(value, default=str)[:40]}), "
-                           "not text; give one string per cell")
-    if value is None:
-        return None
-    if isinstance(value, float) and math.isnan(value):
-        return None
-    text = str(value)
-    return text if text.strip() else None
-
-
-def _read_split(name: str, path_text: str, cfg: TaskConfig, base: Path) -> tuple[list[str], list[Any], list[str], list[int], Path]:
-    path = Path(path_text)
-    if not path.is_absolute():
-        path = (base / path) if not path.exists() and (base / path).exists() else path
+def _read_split(name: str, path: Path, cfg: TaskConfig) -> _RawSplit:
     rows, lines = read_rows(path, cfg.format)
     if not rows:
         raise HarnessError(f"{path}: split '{name}' has no data rows")
@@ -233,17 +139,21 @@ def _read_split(name: str, path_text: str, cfg: TaskConfig, base: Path) -> tuple
         if col not in columns:
             raise HarnessError(f"{path}: no column {col!r} (set by {k}); the columns are {', '.join(map(repr, columns))}"
                                + _delimiter_hint(columns, path))
-    ids, texts, labels = [], [], []
+    ids: list[str] = []
+    texts: list[str | tuple[str, str]] = []
+    labels: list[str] = []
     for i, (row, line) in enumerate(zip(rows, lines, strict=True)):
         where = f"{path} line {line}"
-        parts = [_cell(row.get(c), where, c) for c in text_cols]
-        for c, p in zip(text_cols, parts, strict=True):
-            if p is None:
+        parts: list[str] = []
+        for c in text_cols:
+            part = cell_text(row.get(c), where, c)
+            if part is None:
                 raise HarnessError(f"{where}: empty text in column {c!r}; remove the row or fill it in")
-        label = _cell(row.get(cfg.label), where, cfg.label)
+            parts.append(part)
+        label = cell_text(row.get(cfg.label), where, cfg.label)
         if label is None:
             raise HarnessError(f"{where}: missing label in column {cfg.label!r}")
-        row_id = _cell(row.get(cfg.id), where, cfg.id) if cfg.id else f"{name}-{i + 1}"
+        row_id = cell_text(row.get(cfg.id), where, cfg.id) if cfg.id else f"{name}-{i + 1}"
         if row_id is None:
             raise HarnessError(f"{path} line {line}: missing id in column {cfg.id!r}")
         ids.append(row_id)
@@ -252,7 +162,7 @@ def _read_split(name: str, path_text: str, cfg: TaskConfig, base: Path) -> tuple
     dup = [k for k, n in Counter(ids).items() if n > 1]
     if dup:
         raise HarnessError(f"{path}: id {dup[0]!r} appears {Counter(ids)[dup[0]]} times in column {cfg.id!r}; ids must be unique")
-    return ids, texts, labels, lines, path
+    return _RawSplit(ids, texts, labels, lines, path)
 
 
 def _delimiter_hint(columns: Sequence[str], path: Path) -> str:
@@ -323,47 +233,39 @@ def subsample(labels: Sequence[int], size: int, seed: int) -> list[int]:
 
 def load_task(cfg: TaskConfig, *, seed: int = 0, base: Path | None = None) -> TaskData:
     """Read and check all splits; carve dev/test from train when they are not given."""
-    base = base or Path.cwd()
     files: dict[str, str] = {}
-    raw: dict[str, tuple[list[str], list[Any], list[str], list[int], str]] = {}
-    for name in ("train", "dev", "test"):
-        path_text = getattr(cfg, name)
-        if path_text is None:
-            continue
-        if path_text.startswith("asset:"):
-            from harness.models.assets import resolve_data
-
-            path_text = str(resolve_data(path_text[len("asset:"):]))
-        ids, texts, labels, lines, path = _read_split(name, path_text, cfg, base)
+    raw: dict[str, _RawSplit] = {}
+    for name, path in split_paths(cfg, base).items():
+        raw[name] = _read_split(name, path, cfg)
         files[str(path)] = file_sha256(path)
-        raw[name] = (ids, texts, labels, lines, str(path))
     notes: list[str] = []
-    train_path = raw["train"][4]
-    if len(set(raw["train"][2])) < 2:
-        raise HarnessError(f"{train_path}: train has a single class ({raw['train'][2][0]!r}); a classifier needs two or more")
+    train_path = raw["train"].path
+    if len(set(raw["train"].labels)) < 2:
+        raise HarnessError(f"{train_path}: train has a single class ({raw['train'].labels[0]!r}); "
+                           "a classifier needs two or more")
     if cfg.labels is not None:
         label_names = tuple(cfg.labels)
-        for _, _, labels, lines, src in raw.values():
-            for lab, line in zip(labels, lines, strict=True):
+        for split in raw.values():
+            for lab, line in zip(split.labels, split.lines, strict=True):
                 if lab not in label_names:
                     raise HarnessError(
-                        f"{src} line {line}: label {lab!r} is not in task.labels ({', '.join(label_names)})"
+                        f"{split.path} line {line}: label {lab!r} is not in task.labels ({', '.join(label_names)})"
                     )
     else:
-        label_names = tuple(sorted(set(raw["train"][2])))
+        label_names = tuple(sorted(set(raw["train"].labels)))
         for name in ("dev", "test"):
             if name in raw:
-                _, _, labels, lines, src = raw[name]
-                for lab, line in zip(labels, lines, strict=True):
+                for lab, line in zip(raw[name].labels, raw[name].lines, strict=True):
                     if lab not in label_names:
                         raise HarnessError(
-                            f"{src} line {line}: label {lab!r} never occurs in train ({train_path}); "
+                            f"{raw[name].path} line {line}: label {lab!r} never occurs in train ({train_path}); "
                             "a model cannot learn it: add training rows or declare task.labels"
                         )
     index = {lab: k for k, lab in enumerate(label_names)}
     splits: dict[str, Split] = {}
-    for name, (ids, texts, labels, lines, src) in raw.items():
-        splits[name] = Split(name, tuple(ids), tuple(texts), tuple(index[x] for x in labels), src, tuple(lines))
+    for name, r in raw.items():
+        splits[name] = Split(name, tuple(r.ids), tuple(r.texts), tuple(index[x] for x in r.labels), str(r.path),
+                             tuple(r.lines))
     train = splits["train"]
     if cfg.dedupe:
         seen: set[str] = set()

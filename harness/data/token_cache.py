@@ -14,6 +14,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
+from harness.files import atomic_write_text, cache_dir
 from harness.methods.registry import Encoded
 
 __all__ = ["cache_key", "cached_encode", "tokens_dir", "tokenizer_fingerprint"]
@@ -23,9 +24,7 @@ _FORMAT = 1  # bump when the file layout changes
 
 def tokens_dir() -> Path:
     """`<cache>/tokens`, with the cache folder from $HARNESS_CACHE or ~/.cache/harness."""
-    from harness.models.toy import default_cache_dir
-
-    return default_cache_dir() / "tokens"
+    return cache_dir() / "tokens"
 
 
 def tokenizer_fingerprint(tokenizer: Any) -> str:
@@ -89,8 +88,6 @@ def cached_encode(key: str, count: int, encode: Callable[[], list[Encoded]],
 
     Returns (items, hit).
     """
-    from harness.files import atomic_write_text
-
     path = (folder or tokens_dir()) / f"{key}.json"
     if path.exists():
         items = _from_json(path.read_text(encoding="utf-8"))

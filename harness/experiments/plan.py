@@ -11,7 +11,8 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from harness.config import Config, config_to_dict
+from harness.config import Config, config_folder, config_to_dict
+from harness.data.task import load_task
 from harness.errors import HarnessError
 from harness.files import read_json
 from harness.runs.folders import read_status, run_folder, run_id
@@ -48,14 +49,12 @@ def estimate_runs(runs: Sequence[Config]) -> list[dict[str, Any]]:
     Estimates use only finished runs of the same checkpoint, method and max_length (seconds per
     example-epoch); with none to go on the estimate is None ('unknown'), never a made-up rate.
     """
-    from harness.data.task import load_task
-
     rows_cache: dict[str, int] = {}
     out: list[dict[str, Any]] = []
     for cfg in runs:
         key = json.dumps([config_to_dict(cfg)["task"], cfg.train.seed], sort_keys=True)
         if key not in rows_cache:  # the same base folder as the runner's
-            base = Path(cfg.source).parent if Path(cfg.source).is_file() else None
+            base = config_folder(cfg)
             rows_cache[key] = len(load_task(cfg.task, seed=cfg.train.seed, base=base).train)
         folder = run_folder(cfg)
         state = _state(folder)

@@ -18,6 +18,7 @@ from typing import Any
 from harness.config import load_config
 from harness.errors import HarnessError
 from harness.files import atomic_write_json, read_json
+from harness.runs import run as runner
 from harness.runs.folders import require_finished, run_folder
 
 __all__ = ["replay_verdict", "replay_run"]
@@ -92,8 +93,6 @@ def _prediction_differences(a: list[dict[str, Any]], b: list[dict[str, Any]]) ->
 
 def replay_run(run_dir: Path, out_dir: Path, *, log: Callable[[str], None] = logger.info) -> dict[str, Any]:
     """Re-run `run_dir` from its config.yaml into `out_dir`; compare data, environment, metrics, predictions."""
-    from harness.runs import run as runner
-
     run_dir = Path(run_dir).resolve()
     require_finished(run_dir, need=("metrics.json", "predictions.jsonl", "config.yaml", "data.json",
                                     "environment.json"))

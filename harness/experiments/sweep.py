@@ -19,11 +19,18 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from harness.config import Config, config_from_dict, config_to_dict, set_dotted
+from harness.config import Config, config_folder, config_from_dict, config_to_dict, set_dotted
+from harness.config.dotted import thaw
+from harness.data.task import split_paths
 from harness.errors import HarnessError
 from harness.experiments.plan import estimate_runs, log_plan
 from harness.files import atomic_write_json, file_sha256, read_json
+from harness.report.compare import compare_runs
+from harness.runs import run as runner
 from harness.runs.folders import read_status, run_folder, run_id, write_status
+from harness.train.checkpoints import Interrupted
+from harness.train.memory import current_rss_mb, peak_rss_mb
+from harness.train.processes import is_main_process
 
 __all__ = ["data_files", "estimate_runs", "expand_sweep", "parse_shard", "run_sweep", "plan_sweep", "sweep_folder"]
 
@@ -31,14 +38,6 @@ logger = logging.getLogger(__name__)
 
 Log = Callable[[str], None]
 _MISSING = object()
-
-
-def _thaw(value: Any) -> Any:
-    if isinstance(value, tuple):
-        return [_thaw(v) for v in value]
-    if isinstance(value, dict):
-        return {k: _thaw(v) for k, v in value.items()}
-    return value
 
 
 def _lookup(data: dict[str, Any], key: str) -> Any:
@@ -55,7 +54,7 @@ def _expand(cfg: Config) -> tuple[list[Config], list[int]]:
     base = config_to_dict(cfg)
     base["sweep"] = {"grid": {}, "arms": [], "exclude": []}
     keys = list(cfg.sweep.grid)  # file order: dicts keep insertion order
-    rules = [{k: _thaw(v) for k, v in rule.items()} for rule in cfg.sweep.exclude]
+    rules = [{k: thaw(v) for k, v in rule.items()} for rule in cfg.sweep.exclude]
     hits = [0] * len(rules)
     runs: list[Config] = []
     seen: dict[str, int] = {}
@@ -65,10 +64,10 @@ def _expand(cfg: Config) -> tuple[list[Config], list[int]]:
     for n, (arm, combo) in enumerate(combos):
         data = base
         for key, value in arm.items():
-            data = set_dotted(data, key, _thaw(value), f"sweep.arms in {cfg.source}")
+            data = set_dotted(data, key, thaw(value), f"sweep.arms in {cfg.source}")
         for key, value in zip(keys, combo, strict=True):
             # a one-part key ('method') replaces the whole block; dotted keys set one field
-            data = set_dotted(data, key, _thaw(value), f"sweep.grid.{key} in {cfg.source}")
+            data = set_dotted(data, key, thaw(value), f"sweep.grid.{key} in {cfg.source}")
         run = config_from_dict(data, source=cfg.source)
         resolved = config_to_dict(run)
         matched = [i for i, rule in enumerate(rules) if all(_lookup(resolved, k) == v for k, v in rule.items())]
@@ -108,22 +107,8 @@ def sweep_folder(cfg: Config, name: str) -> Path:
 
 def data_files(cfg: Config) -> list[Path]:
     """The split files a run reads, resolved as the runner resolves them (working folder, then config folder)."""
-    base = Path(cfg.source).parent if Path(cfg.source).is_file() else Path.cwd()
-    out: list[Path] = []
-    for split in ("train", "dev", "test"):
-        text = getattr(cfg.task, split)
-        if text is None:
-            continue
-        if text.startswith("asset:"):
-            from harness.models.assets import resolve_data
-
-            out.append(Path(resolve_data(text[len("asset:"):])).resolve())
-            continue
-        path = Path(text)
-        if not path.is_absolute() and not path.exists() and (base / path).exists():
-            path = base / path
-        out.append(path.resolve())
-    return out
+    base = config_folder(cfg)
+    return [path.resolve() for path in split_paths(cfg.task, base).values()]
 
 
 def _hash_data(runs: Sequence[Config]) -> dict[str, str]:
@@ -174,8 +159,6 @@ def _record(index: int, cfg: Config) -> dict[str, Any]:
 
 def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
                  memory: dict[int, dict[str, float | None]] | None = None) -> list[dict[str, Any]]:
-    from harness.train.processes import is_main_process
-
     records = [_record(i, cfg) for i, cfg in enumerate(runs)]
     for i, mem in (memory or {}).items():
         records[i]["memory"] = mem
@@ -186,17 +169,12 @@ def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
 
 
 def _mark_failed(folder: Path, message: str) -> None:
-    from harness.train.processes import is_main_process
-
     if is_main_process():
         write_status(folder, "failed", error=message)
 
 
 def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log, shown: set[str]) -> tuple[str, bool]:
     """Run (or skip, or resume) one run of the sweep; return its final state and whether it ran."""
-    from harness.runs import run as runner  # looked up at call time so tests can replace execute_run
-    from harness.train.checkpoints import Interrupted
-
     folder = run_folder(cfg)
     state = _state(folder)["state"]
     stale = _changed_in_run(folder, start) if state != "new" else None
@@ -213,6 +191,7 @@ def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log, shown: set[
     resume = stale is None and (folder / "checkpoints" / "last.pt").is_file()  # what the runner resumes from
     log(f"{tag} {'resuming from its last checkpoint' if resume else 'running'}")
     try:
+        # looked up at call time (module attribute), so tests can stand in for execute_run
         runner.execute_run(cfg, resume=resume, overwrite=state != "new" and not resume, log=log,
                            shown_findings=shown)
     except Interrupted:
@@ -259,11 +238,8 @@ def run_sweep(
     summary: dict[str, Any] = {"folder": str(folder), "runs": records, "picked": picked, "failed": failed,
                                "data_changed": _changed_since(start)}
     log(f"sweep {name}: {len(picked) - len(failed)} finished, {len(failed)} failed; index in {folder / 'sweep.json'}")
-    from harness.train.processes import is_main_process
 
     if compare and is_main_process() and any(r["state"] == "finished" for r in records):
-        from harness.report.compare import compare_runs
-
         # every started run goes in: compare lists unfinished ones as left out instead of averaging them
         started = [Path(r["path"]) for r in records if r["state"] != "new"]
         try:
@@ -281,7 +257,6 @@ def _memory_after() -> dict[str, float | None]:
     """Memory once a run is over and collected: what the next run starts from (growth here is a leak)."""
     import gc
 
-    from harness.train.memory import current_rss_mb, peak_rss_mb
 
     peak = peak_rss_mb()  # since the runner reset the window at the run's start: scoring and report included
     gc.collect()  # the finished run's model, optimiser and batches are garbage now; return them before the next

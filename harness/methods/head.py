@@ -10,7 +10,6 @@ no bias, so a decoder head is exported in our own format (see `harness.methods.h
 
 from __future__ import annotations
 
-import warnings
 from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
@@ -23,30 +22,22 @@ from torch import nn
 from harness.config import Config
 from harness.data.task import TaskData
 from harness.errors import SettingError
-from harness.methods.pooling import ClassifierHead, HeadModel, build_pooling, pad_batch, resolve_pooling
+from harness.methods.adapters import add_lora
+from harness.methods.batches import (
+    PAD_MULTIPLE,
+    collate_encoded,
+    count_parameters,
+    encode_texts,
+    predict_batches,
+)
+from harness.methods.head_export import save_head_model
+from harness.methods.pooling import ClassifierHead, HeadModel, build_pooling, resolve_pooling
 from harness.methods.registry import Encoded, register_method
 from harness.models.backbones import Backbone, clamp_max_length, load_backbone
 
-__all__ = ["PAD_MULTIPLE", "ROUND_ABOVE", "HeadMethod", "batch_width", "class_weights", "collate_encoded",
-           "count_parameters", "encode_texts", "predict_batches"]
+__all__ = ["HeadMethod", "class_weights"]
 
 _EMBEDDING_PARTS = {"embeddings", "wte", "wpe", "embed_tokens", "embed_positions", "shared"}
-# Batches wider than ROUND_ABOVE tokens are padded on to a multiple of PAD_MULTIPLE. Why: a width for every
-# length up to max_length means new matrix shapes nearly every batch; the CPU kernel library keeps the
-# kernels it builds per shape, and the allocator keeps blocks of every size. Measured on MiniLM / SMS spam
-# (scripts/benchmark.py, 2 epochs): peak memory about 2.0 GB -> 1.6 GB at the same speed. Short batches stay
-# exact: their activations are small, and rounding 13 tokens up to 16 would cost a fifth more work.
-PAD_MULTIPLE = 8
-ROUND_ABOVE = 32
-
-
-def batch_width(longest: int, limit: int) -> int:
-    """The width a batch is padded to: its longest row, rounded up to PAD_MULTIPLE above ROUND_ABOVE, within `limit`."""
-    if longest <= ROUND_ABOVE:
-        return longest
-    return max(longest, min(-(-longest // PAD_MULTIPLE) * PAD_MULTIPLE, limit))
-
-
 def class_weights(spec: str | dict[str, float] | None, train_labels: Sequence[int],
                   label_names: Sequence[str]) -> torch.Tensor | None:
     """Cross-entropy class weights: None, `balanced` (n / (K * count_k)) or explicit {label: weight} (others 1)."""
@@ -66,12 +57,6 @@ def class_weights(spec: str | dict[str, float] | None, train_labels: Sequence[in
         if name not in label_names:
             raise SettingError(f"method.class_weights.{name}", f"not a label of the task ({', '.join(label_names)})")
     return torch.tensor([float(spec.get(name, 1.0)) for name in label_names], dtype=torch.float32)
-
-
-def count_parameters(module: nn.Module) -> tuple[int, int]:
-    """(trainable, total) parameter counts."""
-    params = list(module.parameters())
-    return sum(p.numel() for p in params if p.requires_grad), sum(p.numel() for p in params)
 
 
 def _head_dropout(cfg: Config, config: Any) -> float:
@@ -98,79 +83,15 @@ def _freeze(model: HeadModel, what: str) -> None:
                 p.requires_grad_(False)
 
 
-def _add_lora(backbone: Any, cfg: Config) -> Any:
-    """Wrap the backbone in peft low-rank adapters; peft freezes everything else in it."""
-    import peft
-    from transformers.pytorch_utils import Conv1D
-
-    lora = cfg.method.lora
-    assert lora is not None
-    settings = peft.LoraConfig(
-        r=lora.r, lora_alpha=lora.alpha, lora_dropout=lora.dropout,  # type: ignore[arg-type]  # a float works
-        target_modules=list(lora.targets) if lora.targets else None,  # None: peft's per-architecture default
-        # GPT-2 stores its projections as Conv1D (transposed weights); peft must be told.
-        fan_in_fan_out=any(isinstance(m, Conv1D) for m in backbone.modules()),
-    )
-    # peft draws adapter A matrices from the global stream: seed it locally so adapters are reproducible.
-    with torch.random.fork_rng(devices=[]), warnings.catch_warnings():
-        torch.manual_seed(cfg.train.seed)
-        # peft calls a transformers method that transformers itself marks deprecated; not ours to act on.
-        warnings.simplefilter("ignore", FutureWarning)
-        try:
-            return peft.get_peft_model(backbone, settings)
-        except ValueError as exc:
-            raise SettingError("method.lora.targets", f"{str(exc).splitlines()[0]}") from None
-
-
-def encode_texts(tokenizer: Any, texts: Sequence[Any], labels: Sequence[int], max_length: int,
-                 type_ids: bool) -> list[Encoded]:
-    """Tokenise texts (strings or pairs) with truncation; keep segment ids when the model takes them."""
-    if not texts:
-        return []
-    if isinstance(texts[0], tuple):
-        enc = tokenizer([t[0] for t in texts], [t[1] for t in texts], truncation="longest_first",
-                        max_length=max_length)
-    else:
-        enc = tokenizer(list(texts), truncation=True, max_length=max_length)
-    out = []
-    for i, label in enumerate(labels):
-        extra = {"token_type_ids": tuple(enc["token_type_ids"][i])} if type_ids else None
-        out.append(Encoded(tuple(enc["input_ids"][i]), int(label), extra))
-    return out
-
-
-def collate_encoded(items: Sequence[Encoded], pad_id: int, type_ids: bool,
-                    limit: int | None = None) -> dict[str, torch.Tensor]:
-    """A right-padded batch with labels; given `limit` (max_length), its width follows `batch_width`."""
-    types = [it.extra["token_type_ids"] for it in items] if type_ids else None  # type: ignore[index]
-    width = batch_width(max(len(it) for it in items), limit) if limit is not None else None
-    batch = pad_batch([it.input_ids for it in items], pad_id, type_ids=types, width=width)
-    batch["labels"] = torch.tensor([it.label for it in items], dtype=torch.long)
-    return batch
-
-
-def predict_batches(model: nn.Module, batches: Any, forward: Any) -> np.ndarray:
-    """Softmax rows of `forward(batch)` over `batches`, in eval mode under inference_mode; mode restored."""
-    device = next(model.parameters()).device
-    was_training = model.training
-    model.eval()
-    rows = []
-    try:
-        with torch.inference_mode():
-            for batch in batches:
-                batch = {k: v.to(device) for k, v in batch.items()}
-                rows.append(torch.softmax(forward(batch).float(), dim=-1).cpu().numpy())
-    finally:
-        model.train(was_training)
-    return np.concatenate(rows).astype(np.float64)
-
-
 @register_method("head")
 class HeadMethod:
     """Backbone + pooling + fresh head, trained with cross-entropy."""
 
     name = "head"
     trains = True
+    # Wide batches are padded up to a multiple of this (see harness.methods.batches.batch_width); the
+    # benchmark sets 1 on a method object, through execute_run's `prepare`, to measure exact widths.
+    pad_multiple = PAD_MULTIPLE
 
     def __init__(self, *, cfg: Config, data: TaskData, backbone: Backbone | None = None) -> None:
         m = cfg.method
@@ -195,7 +116,7 @@ class HeadMethod:
                               seed=cfg.train.seed, std=float(getattr(config, "initializer_range", 0.02)),
                               bias=self.head_bias)
         if m.lora is not None:
-            bare = _add_lora(bare, cfg)
+            bare = add_lora(bare, m.lora, seed=cfg.train.seed)
         self.model = HeadModel(bare, pooling, head, self.family)
         _freeze(self.model, m.freeze)
         weights = class_weights(m.class_weights, data.train.labels, self.label_names)
@@ -215,7 +136,8 @@ class HeadMethod:
 
     def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
         """Right-pad to the longest example of the batch (wide batches rounded up, see `batch_width`)."""
-        return collate_encoded(items, self.tokenizer.pad_token_id, self.uses_type_ids, limit=self.max_length)
+        return collate_encoded(items, self.tokenizer.pad_token_id, self.uses_type_ids, limit=self.max_length,
+                               multiple=self.pad_multiple)
 
     def logits(self, batch: dict[str, torch.Tensor]) -> torch.Tensor:
         return self.model(batch["input_ids"], batch["attention_mask"], batch.get("token_type_ids"))
@@ -240,8 +162,6 @@ class HeadMethod:
         return [(n, p) for n, p in self.model.named_parameters() if p.requires_grad]
 
     def save(self, folder: Any) -> None:
-        from harness.methods.head_export import save_head_model
-
         self.export_format = save_head_model(self, Path(folder))
 
     def describe(self) -> dict[str, Any]:

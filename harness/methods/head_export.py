@@ -27,7 +27,7 @@ from torch import nn
 
 from harness.errors import HarnessError
 from harness.files import atomic_folder
-from harness.methods.head import collate_encoded, encode_texts, predict_batches
+from harness.methods.batches import collate_encoded, encode_texts, predict_batches
 from harness.methods.pooling import ClassifierHead, HeadModel, build_pooling
 from harness.models.quiet import quiet_library
 

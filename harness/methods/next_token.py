@@ -5,15 +5,7 @@ Each example becomes prompt + label words of its gold label (+ the end-of-text t
 the ignore index, and as a causal LM predicts the next token, position t is scored on token t+1.
 Truncation cuts the example's text, never the template or the label words (templates.py).
 
-Rank scoring: the score of label y is the log-probability of its tokens after the prompt, summed
-or per-token mean (`method.score`); softmax over labels gives the probabilities. A batch of
-prompts runs once, left-padded (attention mask zero on the pads, position ids counted from each
-prompt's first real token), with `use_cache=True`. Its key/value cache (a transformers
-`DynamicCache`, tensors of shape (batch, heads, seq, head_dim) per layer) is repeated over the
-label sequences with `batch_repeat_interleave`, and all labels' continuations run in one more
-pass. Single-token label words need only the prompt pass. For encoder-decoder checkpoints the
-label words (with the tokenizer's closing token, e.g. </s>) are the decoder target: the encoder
-runs once per prompt and its outputs serve every label; training is the ordinary seq2seq loss.
+Rank scoring (the label words' log-probability after the prompt) is in `harness.methods.rank_scoring`.
 Several words for one label are scored each and averaged as probabilities (`multi_word: average`);
 training uses the first word. Encoder-only checkpoints are refused: they have no next-token layer.
 """
@@ -23,20 +15,27 @@ from __future__ import annotations
 import copy
 import json
 import logging
-import math
-import warnings
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import torch
-import torch.nn.functional as F
-from transformers.modeling_outputs import BaseModelOutput
 
 from harness.config import Config, config_from_dict, config_to_dict
 from harness.data.task import Split, TaskData
 from harness.errors import HarnessError, SettingError
+from harness.files import atomic_write_text
+from harness.methods.adapters import add_lora
+from harness.methods.batches import count_parameters
+from harness.methods.rank_scoring import (
+    IGNORE_INDEX,
+    decoder_rank_scores,
+    label_log_scores,
+    masked_lm_loss,
+    pad_ids,
+    seq2seq_rank_scores,
+)
 from harness.methods.registry import Encoded, register_method
 from harness.methods.templates import (
     PromptBuilder,
@@ -54,121 +53,10 @@ __all__ = [
     "INFO_FILE",
     "ExportedLM",
     "NextTokenMethod",
-    "decoder_rank_scores",
-    "label_log_scores",
-    "masked_lm_loss",
-    "seq2seq_rank_scores",
 ]
 
 logger = logging.getLogger(__name__)
-IGNORE_INDEX = -100  # torch cross_entropy's default ignore_index
 INFO_FILE = "next_token.json"  # beside the saved model: label token ids and what rebuilding the method needs
-
-
-def masked_lm_loss(logits: torch.Tensor, targets: torch.Tensor) -> torch.Tensor:
-    """Mean cross-entropy of the tokens whose target is not IGNORE_INDEX; logits at t predict targets at t+1."""
-    vocab = logits.shape[-1]
-    shifted = logits[:, :-1].reshape(-1, vocab)  # (batch * (seq-1), vocab)
-    return F.cross_entropy(shifted.float(), targets[:, 1:].reshape(-1), ignore_index=IGNORE_INDEX)
-
-
-def _device(model: torch.nn.Module) -> torch.device:
-    return next(model.parameters()).device
-
-
-def _pad(seqs: Sequence[Sequence[int]], value: int, *, left: bool = False) -> tuple[torch.Tensor, torch.Tensor]:
-    """(ids, mask) of shape (n, longest), padded on the left or the right."""
-    width = max(len(s) for s in seqs)
-    ids = torch.full((len(seqs), width), value, dtype=torch.long)
-    mask = torch.zeros((len(seqs), width), dtype=torch.long)
-    for i, s in enumerate(seqs):
-        if s:
-            span = slice(width - len(s), width) if left else slice(0, len(s))
-            ids[i, span] = torch.tensor(list(s), dtype=torch.long)
-            mask[i, span] = 1
-    return ids, mask
-
-
-def _last_position_only(model: Any) -> dict[str, Any]:
-    """`logits_to_keep=1` where the model takes it: the output layer then runs on the prompts' last column only.
-
-    Why: the prompt pass needs one distribution per prompt, and the output layer over every position
-    (vocabulary x hidden per token, a fifth of a small decoder's weights) is wasted work.
-    """
-    import inspect
-
-    try:
-        takes = "logits_to_keep" in inspect.signature(model.forward).parameters
-    except (TypeError, ValueError):  # a forward without a readable signature
-        takes = False
-    return {"logits_to_keep": 1} if takes else {}
-
-
-@torch.inference_mode()  # like the head evaluation pass: no autograd bookkeeping at all
-def decoder_rank_scores(model: Any, prompts: Sequence[Sequence[int]],
-                        seqs: Sequence[Sequence[int]], pad_id: int) -> torch.Tensor:
-    """Summed log-probs (n_prompts, n_seqs) of every sequence after every prompt, prompts run once."""
-    device = _device(model)
-    n, m = len(prompts), len(seqs)
-    ids, mask = _pad(prompts, pad_id, left=True)  # left padding: the last column is every prompt's end
-    positions = (mask.cumsum(-1) - 1).clamp(min=0)  # so padding does not shift a prompt's positions
-    out = model(input_ids=ids.to(device), attention_mask=mask.to(device), position_ids=positions.to(device),
-                use_cache=True, **_last_position_only(model))
-    first = out.logits[:, -1].float().log_softmax(-1)  # (n, vocab): distribution of the first label token
-    scores = first[:, torch.tensor([s[0] for s in seqs], device=device)]  # (n, m)
-    longest = max(len(s) for s in seqs)
-    if longest == 1:
-        return scores.cpu()
-    cache = out.cache
-    cache.batch_repeat_interleave(m)  # row i*m + j continues prompt i with sequence j
-    feed, feed_mask = _pad([s[:-1] for s in seqs], pad_id)  # (m, longest-1): tokens fed after the prompt
-    want, _ = _pad([s[1:] for s in seqs], 0)  # (m, longest-1): tokens they predict
-    feed, feed_mask, want = feed.repeat(n, 1), feed_mask.repeat(n, 1), want.repeat(n, 1)  # (n*m, longest-1)
-    full_mask = torch.cat([mask.repeat_interleave(m, 0), feed_mask], dim=1)  # (n*m, prompt + longest-1)
-    start = mask.sum(-1).repeat_interleave(m)[:, None]  # (n*m, 1): first position after each prompt
-    cont_pos = start + torch.arange(longest - 1)[None, :]
-    logits = model(input_ids=feed.to(device), attention_mask=full_mask.to(device),
-                   position_ids=cont_pos.to(device), cache=cache, use_cache=True).logits.float()
-    logp = logits.log_softmax(-1).gather(-1, want.to(device)[..., None]).squeeze(-1)  # (n*m, longest-1)
-    rest = (logp * feed_mask.to(device)).sum(-1).view(n, m)
-    return (scores + rest).cpu()
-
-
-@torch.inference_mode()
-def seq2seq_rank_scores(model: Any, prompts: Sequence[Sequence[int]],
-                        seqs: Sequence[Sequence[int]], pad_id: int, start_id: int) -> torch.Tensor:
-    """Summed log-probs (n_prompts, n_seqs) of every target given every input; the encoder runs once."""
-    device = _device(model)
-    n, m = len(prompts), len(seqs)
-    ids, mask = _pad(prompts, pad_id)
-    mask = mask.to(device)
-    encoded = model.get_encoder()(input_ids=ids.to(device), attention_mask=mask)
-    hidden = encoded.last_hidden_state.repeat_interleave(m, 0)  # (n*m, seq, d_model)
-    feed, feed_mask = _pad([(start_id, *s[:-1]) for s in seqs], pad_id)  # (m, longest): decoder inputs
-    want, _ = _pad(seqs, 0)
-    feed, feed_mask, want = feed.repeat(n, 1), feed_mask.repeat(n, 1), want.repeat(n, 1)  # (n*m, longest)
-    logits = model(encoder_outputs=BaseModelOutput(last_hidden_state=hidden),
-                   attention_mask=mask.repeat_interleave(m, 0), decoder_input_ids=feed.to(device),
-                   decoder_attention_mask=feed_mask.to(device)).logits.float()
-    logp = logits.log_softmax(-1).gather(-1, want.to(device)[..., None]).squeeze(-1)  # (n*m, longest)
-    return (logp * feed_mask.to(device)).sum(-1).view(n, m).cpu()
-
-
-def label_log_scores(seq_scores: torch.Tensor, lengths: Sequence[int], owner: Sequence[int], num_labels: int,
-                     score: str = "sum") -> torch.Tensor:
-    """(n, K) label scores from (n, m) summed sequence log-probs.
-
-    score='mean' divides each sequence's sum by its token count first. A label with several
-    sequences gets the log of their mean probability (one sequence: its own score).
-    """
-    if score == "mean":
-        seq_scores = seq_scores / torch.tensor(list(lengths), dtype=seq_scores.dtype)[None, :]
-    owner_t = torch.tensor(list(owner))
-    cols = []
-    for k in range(num_labels):
-        part = seq_scores[:, owner_t == k]  # (n, words of label k)
-        cols.append(torch.logsumexp(part, dim=1) - math.log(part.shape[1]))
-    return torch.stack(cols, dim=1)
 
 
 @register_method("next_token")
@@ -226,22 +114,8 @@ class NextTokenMethod:
             self.model.get_input_embeddings().weight.requires_grad_(False)  # tied models freeze the output layer too
         if m.lora is None:
             return self.model
-        import peft
-        from transformers.pytorch_utils import Conv1D
-
-        lora = peft.LoraConfig(r=m.lora.r, lora_alpha=m.lora.alpha, lora_dropout=m.lora.dropout,
-                               target_modules=list(m.lora.targets) if m.lora.targets else None,
-                               task_type="SEQ_2_SEQ_LM" if self.seq2seq else "CAUSAL_LM",
-                               # GPT-2 stores its projections as Conv1D (transposed weights); peft must be told.
-                               fan_in_fan_out=any(isinstance(x, Conv1D) for x in self.model.modules()))
-        # peft draws the adapters' A matrices from the global stream: seed it locally, as the head method does.
-        with torch.random.fork_rng(devices=[]), warnings.catch_warnings():
-            torch.manual_seed(self.cfg.train.seed)
-            warnings.simplefilter("ignore", FutureWarning)  # peft calls a method transformers marks deprecated
-            try:
-                self.model = peft.get_peft_model(self.model, lora)
-            except ValueError as exc:
-                raise SettingError("method.lora.targets", f"{str(exc).splitlines()[0]}") from None
+        self.model = add_lora(self.model, m.lora, seed=self.cfg.train.seed,
+                              task_type="SEQ_2_SEQ_LM" if self.seq2seq else "CAUSAL_LM")
         return self.model.get_base_model()  # the adapted model itself: takes `cache=` like any other
 
     # -- Method protocol -------------------------------------------------------------------------
@@ -271,9 +145,9 @@ class NextTokenMethod:
 
     def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
         """Right-padded ids and mask, token targets (IGNORE_INDEX off the label words) and class labels."""
-        ids, mask = _pad([it.input_ids for it in items], self.pad_id)
+        ids, mask = pad_ids([it.input_ids for it in items], self.pad_id)
         if self.seq2seq:
-            targets, _ = _pad([(it.extra or {})["target"] for it in items], IGNORE_INDEX)
+            targets, _ = pad_ids([(it.extra or {})["target"] for it in items], IGNORE_INDEX)
         else:
             targets = torch.full_like(ids, IGNORE_INDEX)
             for i, it in enumerate(items):
@@ -324,8 +198,6 @@ class NextTokenMethod:
 
     def save(self, folder: Any) -> None:
         """The model (adapters merged in) and tokenizer, plus INFO_FILE: what `load_exported` rebuilds from."""
-        from harness.files import atomic_write_text
-
         folder = Path(folder)
         folder.mkdir(parents=True, exist_ok=True)
         # A merged copy: a plain checkpoint any transformers install reads, while this method keeps its adapters.
@@ -355,7 +227,7 @@ class NextTokenMethod:
 
     def describe(self) -> dict[str, Any]:
         m = self.cfg.method
-        total = sum(p.numel() for p in self.model.parameters())
+        total = count_parameters(self.model)[1]
         return {
             "kind": self.name, "family": self.family, "template": m.template, "score": m.score,
             "multi_word": m.multi_word, "space_prefix": m.space_prefix, "space_added": self.labels.space,

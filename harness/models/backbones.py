@@ -23,7 +23,10 @@ import torch
 
 from harness.config import ModelConfig
 from harness.errors import SettingError
+from harness.models.assets import resolve_checkpoint
+from harness.models.cut import cut_model_in_memory
 from harness.models.quiet import quiet_library
+from harness.models.toy import ensure_toy
 
 __all__ = ["Backbone", "PAD_TOKEN", "clamp_max_length", "detect_family", "hub_offline", "load_backbone",
            "position_limit", "resolve_source"]
@@ -61,12 +64,8 @@ def hub_offline() -> bool:
 def resolve_source(checkpoint: str) -> tuple[Path | str, str | None]:
     """(folder or hub id, gguf file name or None) for a `model.checkpoint` value."""
     if checkpoint.startswith("toy:"):
-        from harness.models.toy import ensure_toy
-
         return ensure_toy(checkpoint[len("toy:"):]), None
     if checkpoint.startswith("asset:"):
-        from harness.models.assets import resolve_checkpoint
-
         path = Path(resolve_checkpoint(checkpoint[len("asset:"):]))
     else:
         path = Path(checkpoint).expanduser()
@@ -189,8 +188,6 @@ def load_backbone(model_cfg: ModelConfig, *, for_lm: bool) -> Backbone:
         except (OSError, ValueError) as exc:
             raise SettingError("model.checkpoint", f"{where} cannot be loaded as a {family} ({str(exc).splitlines()[0]})") from None
     if model_cfg.layers is not None:
-        from harness.models.cut import cut_model_in_memory
-
         model = cut_model_in_memory(model, model_cfg.layers)
     backbone = Backbone(model, tokenizer, family, model.config, source)
     _fix_padding(backbone)

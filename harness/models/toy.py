@@ -10,7 +10,6 @@ from __future__ import annotations
 import csv
 import hashlib
 import itertools
-import os
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -29,6 +28,7 @@ from transformers import (
 
 from harness.errors import HarnessError
 from harness.files import atomic_folder
+from harness.files import cache_dir as default_cache
 from harness.models.quiet import quiet_library
 
 TOY_KINDS = ("encoder", "decoder", "encoder-decoder")
@@ -80,7 +80,7 @@ def ensure_toy(kind: str, *, seed: int = 0, cache_dir: Path | None = None) -> Pa
     """
     _check_kind(kind)
     texts = sample_texts()
-    root = Path(cache_dir) if cache_dir is not None else default_cache_dir()
+    root = Path(cache_dir) if cache_dir is not None else default_cache()
     toy_root = root / "toy"
     final = toy_root / f"{kind}-s{seed}-{_texts_hash(texts)}"
     if final.is_dir():
@@ -97,12 +97,6 @@ def toy_main(out_dir: Path, seed: int) -> list[Path]:
     """Build every toy kind into `out_dir/<kind>` from the sample tasks' texts; return the folders."""
     texts = sample_texts()
     return [build_toy(kind, Path(out_dir) / kind, texts=texts, seed=seed) for kind in TOY_KINDS]
-
-
-def default_cache_dir() -> Path:
-    """$HARNESS_CACHE if set, else ~/.cache/harness."""
-    env = os.environ.get("HARNESS_CACHE", "").strip()
-    return Path(env).expanduser() if env else Path.home() / ".cache" / "harness"
 
 
 def sample_texts(root: Path | None = None) -> list[str]:
@@ -258,31 +252,17 @@ def _encoder_decoder_tokenizer(texts: Sequence[str]) -> PreTrainedTokenizerFast:
 
 
 def _encoder_model(tokenizer: PreTrainedTokenizerFast) -> PreTrainedModel:
-    config = BertConfig(
-        vocab_size=len(tokenizer),
-        hidden_size=_HIDDEN,
-        num_hidden_layers=_LAYERS,
-        num_attention_heads=_HEADS,
-        intermediate_size=2 * _HIDDEN,
-        max_position_embeddings=_MAX_POSITIONS,
-        type_vocab_size=2,
-        pad_token_id=tokenizer.pad_token_id,
-    )
+    config = BertConfig(vocab_size=len(tokenizer), hidden_size=_HIDDEN, num_hidden_layers=_LAYERS,
+                        num_attention_heads=_HEADS, intermediate_size=2 * _HIDDEN,
+                        max_position_embeddings=_MAX_POSITIONS, type_vocab_size=2, pad_token_id=tokenizer.pad_token_id)
     return BertModel(config, add_pooling_layer=True)  # the pooler feeds BERT's classification head
 
 
 def _decoder_model(tokenizer: PreTrainedTokenizerFast) -> PreTrainedModel:
-    config = GPT2Config(
-        vocab_size=len(tokenizer),
-        n_positions=_MAX_POSITIONS,
-        n_embd=_HIDDEN,
-        n_layer=_LAYERS,
-        n_head=_HEADS,
-        n_inner=2 * _HIDDEN,
-        bos_token_id=tokenizer.bos_token_id,
-        eos_token_id=tokenizer.eos_token_id,
-        pad_token_id=tokenizer.pad_token_id,  # sequence classification finds the last real token with it
-    )
+    config = GPT2Config(vocab_size=len(tokenizer), n_positions=_MAX_POSITIONS, n_embd=_HIDDEN, n_layer=_LAYERS,
+                        n_head=_HEADS, n_inner=2 * _HIDDEN, bos_token_id=tokenizer.bos_token_id,
+                        eos_token_id=tokenizer.eos_token_id,
+                        pad_token_id=tokenizer.pad_token_id)  # sequence classification finds the last real token with it
     return GPT2LMHeadModel(config)
 
 

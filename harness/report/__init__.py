@@ -1,1 +1,10 @@
-"""report"""
+"""Reports: the run report and the comparison of many runs, as Markdown, HTML, CSV, JSON and figures.
+
+| module | one idea |
+|---|---|
+| `run_report` | one run's report (report.md / report.html) |
+| `compare` | many runs -> one table: groups, mean ± sd, intervals, paired tests, cost |
+| `compare_files` | the comparison's files and terminal text |
+| `plots` | the figures |
+| `render` | one document model rendered as Markdown or HTML |
+"""

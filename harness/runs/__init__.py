@@ -1,1 +1,8 @@
-"""runs"""
+"""Runs: one config and one seed, end to end, and what is done with a finished run.
+
+| module | one idea |
+|---|---|
+| `run` | `execute_run`: inputs checked, train, score the test split, write the run folder |
+| `folders` | run ids, run folders, status, environment facts |
+| `predict` | a finished run's model applied to new rows |
+"""

@@ -13,6 +13,7 @@ import yaml
 from harness.data.task import read_rows
 from harness.errors import HarnessError
 from harness.files import atomic_write_text, read_json
+from harness.methods.head_export import load_head_model
 from harness.methods.registry import load_builtin_methods
 from harness.runs.folders import require_finished
 
@@ -31,7 +32,7 @@ def load_exported(run_dir: Path | str) -> Any:
     kind = read_json(run_dir / "method.json").get("kind")
     loader: Any
     if kind == "head":
-        from harness.methods.head_export import load_head_model as loader
+        loader = load_head_model
     else:
         loader = getattr(load_builtin_methods().get(str(kind)), "load_exported", None)
     if loader is None:

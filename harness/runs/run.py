@@ -26,9 +26,10 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from harness.config import Config, config_to_dict, dump_config, key_location
+from harness.config import Config, config_folder, config_to_dict, dump_config, key_location
 from harness.data.audit import audit_data, token_counter
 from harness.data.task import Split, TaskData, load_task
+from harness.data.token_cache import cache_key, cached_encode, tokenizer_fingerprint
 from harness.errors import HarnessError, SettingError
 from harness.files import (
     atomic_folder,
@@ -37,9 +38,15 @@ from harness.files import (
     read_json,
     remove_stale_temporaries,
 )
+from harness.methods.batches import count_parameters
 from harness.methods.registry import Encoded, Method, build_method
+from harness.metrics.scores import compute_metrics
+from harness.report.run_report import write_run_report
 from harness.runs.folders import environment_info, read_status, run_folder, write_status
+from harness.train.checkpoints import Interrupted
+from harness.train.loop import set_threads, train
 from harness.train.memory import peak_rss_mb, reset_peak_rss
+from harness.train.processes import is_main_process, predict_sharded, process_state, wait_for_everyone
 
 __all__ = ["encode_split", "execute_run", "peak_rss_mb"]
 
@@ -49,8 +56,6 @@ logger = logging.getLogger(__name__)
 
 def encode_split(method: Method, split: Split, cfg: Config) -> tuple[list[Encoded], bool]:
     """Tokenise a split through the on-disk token cache; returns (items, cache hit)."""
-    from harness.data.token_cache import cache_key, cached_encode, tokenizer_fingerprint
-
     tokenizer = getattr(method, "tokenizer", None)
     if tokenizer is None:  # a method without a tokenizer of its own: nothing to key the cache on
         return method.encode(split.texts, split.labels), False
@@ -108,7 +113,7 @@ def _check_same_data(folder: Path, data: TaskData) -> None:
 
 def _load_inputs(cfg: Config, resume_from: Path | None) -> tuple[TaskData, Method, dict[str, Any], list[Any]]:
     """Data, method (checkpoint loaded), data audit and encoded splits: every check on user input."""
-    base = Path(cfg.source).parent if Path(cfg.source).is_file() else None
+    base = config_folder(cfg)
     try:
         data = load_task(cfg.task, seed=cfg.train.seed, base=base)
         if resume_from is not None:
@@ -142,19 +147,15 @@ def _predictions(split: Split, probs: Any, label_names: Sequence[str]) -> str:
 
 def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, force: bool = False,
                 log: Callable[[str], Any] = logger.info, on_step: Callable[[int], None] | None = None,
-                shown_findings: set[str] | None = None) -> Path:
+                shown_findings: set[str] | None = None, prepare: Callable[[Method], None] | None = None) -> Path:
     """Run `cfg` (one config, one seed) and return its folder; see the module docstring for the rules.
 
     `force` is `overwrite` under the command line's name (--force). `on_step(step)` runs after every
     optimiser step (tests use it to send SIGINT). `shown_findings`, when given, holds the data-audit
     findings already logged (a sweep passes one set to all its runs, so each finding is shown once;
-    every run's data.json and report still carry all of them); the run adds its own.
+    every run's data.json and report still carry all of them); the run adds its own. `prepare(method)`
+    runs once the method is built, before training (the benchmark's ablations set attributes through it).
     """
-    from harness.metrics.scores import compute_metrics
-    from harness.train.checkpoints import Interrupted
-    from harness.train.loop import set_threads, train
-    from harness.train.processes import is_main_process, predict_sharded, process_state, wait_for_everyone
-
     processes = process_state().num_processes  # joins launched processes before anything else
     main = is_main_process()
     overwrite = overwrite or force
@@ -171,6 +172,8 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
     try:
         threads = set_threads(cfg.train.threads)
         data, method, audit, (train_items, dev_items, test_items) = _load_inputs(cfg, folder if resume else None)
+        if prepare is not None:
+            prepare(method)
     except Exception as exc:
         if main and state is None:  # a new run says why it never started; an earlier attempt is left as it was
             folder.mkdir(parents=True, exist_ok=True)
@@ -226,8 +229,6 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
     if main:
         write_status(folder, "finished")
         try:
-            from harness.report.run_report import write_run_report
-
             write_run_report(folder)
         except Exception as exc:  # the run's results stand; a broken figure must not fail it
             logger.warning("run %s finished but its report could not be written: %s", folder, exc)
@@ -237,14 +238,14 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
 
 
 def _cost(method: Method, result: Any, eval_seconds: float) -> dict[str, Any]:
-    params = list(method.model.parameters())
+    trainable, total = count_parameters(method.model)
     return {
         "train_seconds": result.train_seconds if result else 0.0,
         "eval_seconds": eval_seconds,
         "train_examples_per_second": result.examples_per_second if result else None,
         "peak_rss_mb": peak_rss_mb(),
-        "trainable_parameters": sum(p.numel() for p in params if p.requires_grad) if method.trains else 0,
-        "total_parameters": sum(p.numel() for p in params),
+        "trainable_parameters": trainable if method.trains else 0,
+        "total_parameters": total,
         "steps": result.steps if result else 0,
     }
 

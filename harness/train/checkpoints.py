@@ -26,6 +26,8 @@ import torch
 from torch import nn
 
 from harness.errors import HarnessError
+from harness.files import atomic_write_bytes
+from harness.train.processes import is_main_process, wait_for_everyone
 
 __all__ = ["Checkpoints", "Interrupted", "TrainState", "interrupt_guard", "trainable_state"]
 
@@ -107,9 +109,6 @@ class Checkpoints:
 
     def save(self, model: nn.Module, optimizer: Any, scheduler: Any, state: TrainState) -> None:
         """Write last.pt atomically (the main process only: the others hold the same state)."""
-        from harness.files import atomic_write_bytes
-        from harness.train.processes import is_main_process
-
         if not is_main_process():
             return
         payload = {
@@ -141,8 +140,6 @@ class Checkpoints:
         """Write best.safetensors atomically (the main process only)."""
         from safetensors.torch import save
 
-        from harness.files import atomic_write_bytes
-        from harness.train.processes import is_main_process
 
         if not is_main_process():
             return
@@ -152,7 +149,6 @@ class Checkpoints:
         """Load best.safetensors into `model` (every process, once the main one has written it)."""
         from safetensors.torch import load_file
 
-        from harness.train.processes import wait_for_everyone
 
         wait_for_everyone()
         if not self.best.exists():

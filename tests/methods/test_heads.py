@@ -11,6 +11,7 @@ from sklearn.utils.class_weight import compute_class_weight
 from transformers import AutoTokenizer, BertForSequenceClassification, GPT2ForSequenceClassification
 
 from harness.errors import HarnessError
+from harness.methods.batches import pad_batch
 from harness.methods.head import class_weights
 from harness.methods.pooling import (
     POOLINGS,
@@ -19,7 +20,6 @@ from harness.methods.pooling import (
     HeadModel,
     LastPooling,
     build_pooling,
-    pad_batch,
     position_ids_from_mask,
     resolve_pooling,
 )
@@ -187,7 +187,7 @@ def test_wider_batches_change_no_logits(toy_paths, kind):
 
 
 def test_batch_width_rounds_only_wide_batches_and_never_passes_the_limit():
-    from harness.methods.head import PAD_MULTIPLE, ROUND_ABOVE, batch_width
+    from harness.methods.batches import PAD_MULTIPLE, ROUND_ABOVE, batch_width
 
     assert batch_width(13, 64) == 13 and batch_width(ROUND_ABOVE, 128) == ROUND_ABOVE  # short batches stay exact
     assert batch_width(ROUND_ABOVE + 1, 128) == -(-(ROUND_ABOVE + 1) // PAD_MULTIPLE) * PAD_MULTIPLE

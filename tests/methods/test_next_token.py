@@ -15,10 +15,9 @@ import torch.nn.functional as F
 from harness.config import Config, ModelConfig, config_from_dict
 from harness.data.task import Split, TaskData, load_task
 from harness.errors import HarnessError
-from harness.methods.next_token import (
+from harness.methods.next_token import INFO_FILE, NextTokenMethod
+from harness.methods.rank_scoring import (
     IGNORE_INDEX,
-    INFO_FILE,
-    NextTokenMethod,
     decoder_rank_scores,
     label_log_scores,
     masked_lm_loss,

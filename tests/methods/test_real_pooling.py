@@ -16,8 +16,8 @@ from transformers import BertForSequenceClassification, LlamaForSequenceClassifi
 
 from harness.config import config_from_dict
 from harness.data.task import Split, TaskData
+from harness.methods.batches import pad_batch
 from harness.methods.head import HeadMethod
-from harness.methods.pooling import pad_batch
 from harness.models.assets import resolve_checkpoint
 
 pytestmark = pytest.mark.slow

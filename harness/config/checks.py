@@ -78,14 +78,18 @@ def check_values(cfg: Config, where: Callable[[str], str]) -> None:
         raise HarnessError(f"{where('eval.primary')}: unknown metric {ev.primary!r}; {hint}choose one of "
                            + ", ".join(METRICS))
     if m.kind != "head":
-        from harness.methods.templates import check_text_fields, parse_template
+        from harness.methods.templates import check_text_fields, parse_template, text_fields
 
-        for key, text, allowed in (("method.template", m.template, ("text", "text_a", "text_b", "demos")),
-                                   ("method.demo_template", m.demo_template, ("text", "text_a", "text_b", "label"))):
+        try:
+            fields = text_fields(t.text)
+        except SettingError as exc:
+            raise exc.located(where("task.text")) from None
+        for key, text, allowed in (("method.template", m.template, (*fields, "demos")),
+                                   ("method.demo_template", m.demo_template, (*fields, "label"))):
             try:
                 template = parse_template(text, key=key, allowed=allowed)
                 if key == "method.template":
-                    check_text_fields(template, is_pair=isinstance(t.text, tuple))
+                    check_text_fields(template, fields)
             except SettingError as exc:
                 raise exc.located(where(key)) from None
     if m.kind == "prompt" and m.lora is not None:

@@ -103,7 +103,7 @@ class MethodConfig:
     )
     lora: LoraConfig | None = _doc("low-rank adapters instead of full fine-tuning; null = off", None)
     template: str = _doc(
-        "next_token/prompt: prompt with {text} (or {text_a}/{text_b}) and optional {demos}",
+        "next_token/prompt: prompt with {text} (a pair task: also its two columns by name, e.g. {question}) and optional {demos}",
         "{demos}Message: {text}\nCategory:",
     )
     demo_template: str = _doc(

@@ -43,6 +43,7 @@ from harness.methods.templates import (
     parse_template,
     resolve_label_words,
     special_tokens_around,
+    text_fields,
     tokenize_label_words,
     wants_space,
 )
@@ -85,8 +86,9 @@ class NextTokenMethod:
                                "load the backbone with for_lm=True")
         tok = self.tokenizer
         self.pad_id = next(i for i in (tok.pad_token_id, tok.eos_token_id, 0) if i is not None)
-        self.template = parse_template(m.template, key="method.template", allowed=("text", "text_a", "text_b", "demos"))
-        check_text_fields(self.template, is_pair=self.is_pair)
+        self.fields = text_fields(cfg.task.text)  # {text}, and a pair's two column names
+        self.template = parse_template(m.template, key="method.template", allowed=(*self.fields, "demos"))
+        check_text_fields(self.template, self.fields)
         words = resolve_label_words(m.label_words, self.label_names)
         lead, trail = special_tokens_around(tok)
         self.max_length = clamp_max_length(backbone, cfg.train.max_length)
@@ -100,7 +102,7 @@ class NextTokenMethod:
                                                space=space, end_ids=end)
             limit, trail = self.max_length - self.labels.longest, ()  # a closing eos would end the prompt early
         self.builder = PromptBuilder(self.template, tok, limit=limit, lead=lead, trail=trail,
-                                     limit_key="train.max_length")
+                                     limit_key="train.max_length", fields=self.fields)
         self.seqs, self.owner = self.labels.variants(m.multi_word)
         self.lm = self._adapt(m)
         self.demos = ""

@@ -2,7 +2,7 @@
 
 Demonstrations. `method.shots: k` draws k training examples (or k of every class with
 `shots_per_class`) with the run seed, in a seeded random order, and writes each with
-`method.demo_template` (placeholders {text} or {text_a}/{text_b}, and {label} = the label's
+`method.demo_template` (placeholders {text} or a pair's column names, and {label} = the label's
 first word) into the `{demos}` slot. One set serves every example of a run, so the scores of
 two examples differ only by their own text, and calibration sees the same demonstrations. When
 the demonstrations do not fit the model's context beside an example of `train.max_length`
@@ -66,11 +66,11 @@ def draw_demonstrations(labels: Sequence[int], shots: int, *, per_class: bool, s
 
 def render_demonstrations(
     template: Template, texts: Sequence[str | tuple[str, str]], labels: Sequence[int],
-    label_words: Sequence[tuple[str, ...]],
+    label_words: Sequence[tuple[str, ...]], fields: Sequence[str] = ("text",),
 ) -> list[str]:
     """One rendered string per demonstration; {label} is the label's first word."""
     return [
-        template.render({**text_values(text), "label": label_words[y][0].strip()})
+        template.render({**text_values(text, fields), "label": label_words[y][0].strip()})
         for text, y in zip(texts, labels, strict=True)
     ]
 
@@ -131,13 +131,12 @@ class PromptMethod(NextTokenMethod):
         self.demo_rows: list[str] = []
         if m.shots == 0:
             return
-        demo_template = parse_template(m.demo_template, key="method.demo_template",
-                                       allowed=("text", "text_a", "text_b", "label"))
-        check_text_fields(demo_template, is_pair=self.is_pair)
+        demo_template = parse_template(m.demo_template, key="method.demo_template", allowed=(*self.fields, "label"))
+        check_text_fields(demo_template, self.fields)
         train = data.train
         idx = draw_demonstrations(train.labels, m.shots, per_class=m.shots_per_class, seed=cfg.train.seed)
         demos = render_demonstrations(demo_template, [train.texts[i] for i in idx], [train.labels[i] for i in idx],
-                                      self.labels.words)
+                                      self.labels.words, self.fields)
         # The example keeps train.max_length tokens; demonstrations get what is left of the context.
         budget = (position_limit(self.backbone) or _UNBOUNDED_CONTEXT) - self.max_length
         kept = fit_demonstrations(demos, lambda s: len(self.tokenizer.encode(s, add_special_tokens=False)), budget)

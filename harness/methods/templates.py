@@ -1,8 +1,9 @@
 """Prompt templates and label words for the `next_token` and `prompt` methods.
 
-Templates. `method.template` is plain text with placeholders: `{text}` (or `{text_a}` and
-`{text_b}` for pair tasks) and an optional `{demos}`; `method.demo_template` may also use
-`{label}`. `{{` and `}}` stand for literal braces. The renderer is our own and never calls
+Templates. `method.template` is plain text with placeholders: `{text}` and an optional
+`{demos}`; a pair task (`task.text: [question, reply]`) also names each part by its own column,
+`{question}` and `{reply}` (its `{text}` is both parts, one per line). `method.demo_template` may
+also use `{label}`. `{{` and `}}` stand for literal braces. The renderer is our own and never calls
 `str.format`: a placeholder is a bare name from that short list, with no attribute or index
 access (`{text.x}`, `{text[0]}`), no conversion (`{text!r}`) and no format spec (`{text:>9}`).
 Anything else is a config error naming the key.
@@ -43,11 +44,12 @@ __all__ = [
     "parse_template",
     "resolve_label_words",
     "special_tokens_around",
+    "text_fields",
     "tokenize_label_words",
     "wants_space",
 ]
 
-TEXT_FIELDS = ("text", "text_a", "text_b")
+_RESERVED = ("text", "demos", "label")
 
 
 @dataclass(frozen=True)
@@ -103,24 +105,38 @@ def parse_template(source: str, *, key: str, allowed: Sequence[str]) -> Template
     return Template(source, key, tuple(pieces))
 
 
-def check_text_fields(template: Template, *, is_pair: bool) -> None:
-    """A task template must place the example's text: {text}, or {text_a} and {text_b} for pairs."""
-    fields = template.fields
-    if is_pair:
-        if "text" not in fields and not {"text_a", "text_b"} <= fields:
-            raise SettingError(template.key, "a pair task needs {text_a} and {text_b} (or {text}) in the template")
-    elif "text" not in fields:
-        extra = " ({text_a}/{text_b} are for pair tasks)" if fields & {"text_a", "text_b"} else ""
-        raise SettingError(template.key, f"the template has no {{text}} placeholder{extra}")
-    elif fields & {"text_a", "text_b"}:
-        raise SettingError(template.key, "{text_a}/{text_b} are for pair tasks; this task has one text column")
+def text_fields(task_text: str | Sequence[str]) -> tuple[str, ...]:
+    """The placeholders that carry an example's text: ("text",), or ("text", COLUMN_A, COLUMN_B) for a
+    pair task, each part named by its own column (`task.text: [question, reply]` -> {question}, {reply})."""
+    if isinstance(task_text, str):
+        return ("text",)
+    for column in task_text:
+        if not column.isidentifier() or column in _RESERVED:
+            why = "is reserved" if column in _RESERVED else "is not a plain name (letters, digits, '_')"
+            raise SettingError("task.text", f"column {column!r} {why}, so a template cannot name it as "
+                                            f"{{{column}}}; rename the column in the data files, or use {{text}}")
+    return ("text", *task_text)
 
 
-def text_values(text: str | tuple[str, str]) -> dict[str, str]:
+def _shown(names: Sequence[str]) -> str:
+    return ", ".join("{" + n + "}" for n in names)
+
+
+def check_text_fields(template: Template, fields: Sequence[str]) -> None:
+    """A task template must place the example's text: {text}, or both columns' placeholders of a pair."""
+    used = template.fields
+    if len(fields) == 3:
+        if "text" not in used and not set(fields[1:]) <= used:
+            raise SettingError(template.key, f"a pair task needs {_shown(fields[1:])} (or {{text}}) in the template")
+    elif "text" not in used:
+        raise SettingError(template.key, "the template has no {text} placeholder")
+
+
+def text_values(text: str | tuple[str, str], fields: Sequence[str]) -> dict[str, str]:
     """Placeholder values for one example; a pair also fills {text} with both parts, one per line."""
     if isinstance(text, tuple):
-        return {"text": f"{text[0]}\n{text[1]}", "text_a": text[0], "text_b": text[1]}
-    return {"text": text, "text_a": text, "text_b": ""}
+        return {"text": f"{text[0]}\n{text[1]}", fields[1]: text[0], fields[2]: text[1]}
+    return {"text": text}
 
 
 def resolve_label_words(label_words: Mapping[str, Any] | None, label_names: Sequence[str]) -> list[tuple[str, ...]]:
@@ -241,10 +257,10 @@ class PromptBuilder:
     """Renders an example's prompt and truncates its *text* (never the template) to a token limit."""
 
     def __init__(self, template: Template, tokenizer: Any, *, limit: int, lead: tuple[int, ...],
-                 trail: tuple[int, ...], limit_key: str) -> None:
-        self.template, self.tokenizer = template, tokenizer
+                 trail: tuple[int, ...], limit_key: str, fields: Sequence[str] = ("text",)) -> None:
+        self.template, self.tokenizer, self.fields = template, tokenizer, tuple(fields)
         self.limit, self.lead, self.trail = limit, lead, trail
-        empty = self.ids({"text": "", "text_a": "", "text_b": ""}, "")
+        empty = self.ids(dict.fromkeys(self.fields, ""), "")
         if len(empty) >= limit:
             raise HarnessError(
                 f"{template.key}: the template alone takes {len(empty)} tokens, leaving no room for text within "
@@ -260,7 +276,7 @@ class PromptBuilder:
         parts = list(text) if isinstance(text, tuple) else [text]
         limit = self.limit + extra_limit
         for _ in range(20):  # each round removes the measured overflow; BPE boundaries may need a second
-            values = text_values((parts[0], parts[1]) if len(parts) == 2 else parts[0])
+            values = text_values((parts[0], parts[1]) if len(parts) == 2 else parts[0], self.fields)
             ids = self.ids(values, demos)
             over = len(ids) - limit
             if over <= 0:

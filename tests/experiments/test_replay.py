@@ -14,24 +14,7 @@ from harness.errors import HarnessError
 from harness.experiments.replay import replay_run
 from harness.runs.folders import write_status
 from harness.runs.run import execute_run
-from tests.common import FERRY
-
-CONFIG = """\
-task:
-  name: ferry
-  train: {data}/train.csv
-  dev: {data}/dev.csv
-  test: {data}/test.csv
-  id: id
-  max_rows: 30
-model:
-  checkpoint: toy:encoder
-method:
-  kind: head
-train: {{epochs: 1, batch_size: 8, learning_rate: 1.0e-3, max_length: 32, seed: 5, threads: 1}}
-eval: {{bootstrap: 20}}
-output: {out}
-"""
+from tests.common import FERRY, ferry_config
 
 
 @pytest.fixture
@@ -39,8 +22,7 @@ def toy_run(tmp_path: Path) -> Path:
     """A finished toy:encoder head run (1 epoch, 30 rows per split) on a private copy of the data."""
     data = tmp_path / "data"
     shutil.copytree(FERRY, data)
-    path = tmp_path / "run.yaml"
-    path.write_text(CONFIG.format(data=data, out=tmp_path / "runs"), encoding="utf-8")
+    path = ferry_config(tmp_path, data=data, rows=30, train={"seed": 5})
     return execute_run(load_config(path), log=lambda _: None)
 
 

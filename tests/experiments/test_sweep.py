@@ -14,6 +14,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+import yaml
 
 from harness.cli import main
 from harness.commands import sweep_command
@@ -24,37 +25,14 @@ from harness.files import file_sha256
 from harness.runs import run as runner
 from harness.runs.folders import read_status, run_id
 from harness.train.checkpoints import Interrupted
-from tests.common import FERRY
+from tests.common import FERRY, ferry_config
 
 _REAL_EXECUTE = runner.execute_run  # kept before any test wraps it
 
-GRID = """\
-task:
-  name: ferry
-  train: {train}
-  dev: {dev}
-  test: {test}
-  id: id
-  max_rows: {rows}
-model:
-  checkpoint: toy:encoder
-method:
-  kind: head
-  template: "Q: {{text}} A:"
-train: {{epochs: 1, batch_size: 8, learning_rate: 1.0e-3, max_length: 32, seed: 1, threads: 1}}
-eval: {{bootstrap: 20}}
-output: {output}
-sweep:
-{sweep}
-"""
-
-
 def _write(tmp_path: Path, sweep: str, *, rows: int = 24, data: Path = FERRY, name: str = "grid.yaml") -> Path:
-    path = tmp_path / name
-    path.write_text(GRID.format(train=data / "train.csv", dev=data / "dev.csv", test=data / "test.csv", rows=rows,
-                                output=tmp_path / "runs", sweep=textwrap.indent(textwrap.dedent(sweep), "  ")),
-                    encoding="utf-8")
-    return path
+    """The shared small ferry config with this sweep block (YAML text), written to tmp_path/name."""
+    return ferry_config(tmp_path, name, data=data, rows=rows, method={"kind": "head", "template": "Q: {text} A:"},
+                        sweep=yaml.safe_load(textwrap.dedent(sweep)))
 
 
 THREE_WAY = """\

@@ -20,34 +20,14 @@ import pytest
 from harness.config import load_config
 from harness.experiments.sweep import expand_sweep, run_sweep
 from harness.runs.folders import run_id
-from tests.common import FERRY
-
-SWEEP = """\
-task:
-  name: ferry
-  train: {data}/train.csv
-  dev: {data}/dev.csv
-  test: {data}/test.csv
-  id: id
-  max_rows: 40
-model:
-  checkpoint: toy:decoder
-method:
-  kind: head
-train: {{epochs: 1, batch_size: 8, learning_rate: 1.0e-3, max_length: 32, seed: 1, threads: 1}}
-eval: {{bootstrap: 20}}
-output: {output}
-sweep:
-  grid:
-    train.seed: {seeds}
-    method: [{{kind: head}}, {{kind: next_token, template: "Message: {{text}}\\nTopic:"}}]
-"""
+from tests.common import ferry_config
 
 
 def write_sweep(folder: Path, seeds: list[int]) -> Path:
-    path = folder / "load.yaml"
-    path.write_text(SWEEP.format(data=FERRY, output=folder / "runs", seeds=seeds), encoding="utf-8")
-    return path
+    """A 2 x len(seeds) sweep (head and next_token on the toy decoder, 40 rows per split)."""
+    return ferry_config(folder, "load.yaml", rows=40, checkpoint="toy:decoder",
+                        sweep={"grid": {"train.seed": seeds, "method": [
+                            {"kind": "head"}, {"kind": "next_token", "template": "Message: {text}\nTopic:"}]}})
 
 
 @pytest.mark.skipif(not Path("/proc/self/clear_refs").exists(), reason="per-run peaks need Linux's clear_refs")

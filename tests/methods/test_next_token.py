@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import random
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -241,12 +240,9 @@ def test_truncation_keeps_template_tail_and_label_words(toy_paths: dict[str, Pat
 def test_training_lowers_label_loss_and_beats_majority(toy_paths: dict[str, Path], tmp_path: Path) -> None:
     from harness.train.loop import train
 
-    if FERRY.is_dir():
-        data = load_task(config_from_dict({"task": {"name": "ferry", "train": str(FERRY / "train.csv"),
-                                                    "dev": str(FERRY / "dev.csv"), "test": str(FERRY / "test.csv")},
-                                           "model": {"checkpoint": "-"}}).task)
-    else:  # synthetic stand-in: a cue phrase decides the label
-        data = synthetic_task()
+    data = load_task(config_from_dict({"task": {"name": "ferry", "train": str(FERRY / "train.csv"),
+                                                "dev": str(FERRY / "dev.csv"), "test": str(FERRY / "test.csv")},
+                                       "model": {"checkpoint": "-"}}).task)
     # Single-token cue words: a randomly initialised toy learns one next token per class within a few epochs.
     cue = {"schedule": "sailing", "refund": "refund", "accessibility": "help", "lost_item": "left", "praise": "thanks"}
     cfg = config_from_dict({
@@ -273,21 +269,6 @@ def test_training_lowers_label_loss_and_beats_majority(toy_paths: dict[str, Path
     majority = Counter(data.train.labels).most_common(1)[0][0]
     base = float(np.mean(np.array(data.dev.labels) == majority))  # the majority-class baseline, common practice
     assert float(np.mean(pred == np.array(data.dev.labels))) > base + 0.1
-
-
-def synthetic_task() -> TaskData:
-    """Five labels, each announced by its own cue phrase among shared filler (used when the sample task is absent)."""
-    cues = {"schedule": "what time is the sailing", "refund": "i want my money back", "accessibility": "is there a ramp",
-            "lost_item": "i left my bag on board", "praise": "the crew were lovely"}
-    filler = ["hello", "on friday", "from the harbour", "to the island", "please reply", "cheers"]
-    rng = random.Random(0)
-    names = sorted(cues)
-    rows = [(f"{rng.choice(filler)} {cues[n]} {rng.choice(filler)}", k) for k, n in enumerate(names) for _ in range(40)]
-    rng.shuffle(rows)
-    cut = int(0.8 * len(rows))
-    splits = [Split(s, tuple(f"{s}{i}" for i in range(len(r))), tuple(t for t, _ in r), tuple(y for _, y in r))
-              for s, r in (("train", rows[:cut]), ("dev", rows[cut:]))]
-    return TaskData(splits[0], splits[1], splits[1], tuple(names), False)
 
 
 def test_encoder_checkpoint_is_refused(toy_paths: dict[str, Path]) -> None:

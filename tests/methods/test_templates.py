@@ -15,11 +15,15 @@ from harness.methods.templates import (
     is_space_sensitive,
     parse_template,
     resolve_label_words,
+    text_fields,
+    text_values,
     tokenize_label_words,
     wants_space,
 )
 
-TASK_FIELDS = ("text", "text_a", "text_b", "demos")
+TASK_FIELDS = ("text", "demos")
+PAIR = ("text", "question", "reply")  # text_fields(["question", "reply"]): the reply task's columns
+PAIR_FIELDS = (*PAIR, "demos")
 
 
 @pytest.fixture(scope="module")
@@ -65,13 +69,34 @@ def test_render_matches_str_format_for_safe_templates() -> None:
 def test_template_needs_its_text_placeholder() -> None:
     t = parse_template("{demos}Category:", key="method.template", allowed=TASK_FIELDS)
     with pytest.raises(HarnessError, match=r"method\.template: the template has no \{text\}"):
-        check_text_fields(t, is_pair=False)
-    pair = parse_template("A: {text_a}\nB: {text_b}\nSame?", key="method.template", allowed=TASK_FIELDS)
-    check_text_fields(pair, is_pair=True)
-    with pytest.raises(HarnessError, match="pair tasks"):
-        check_text_fields(pair, is_pair=False)
-    with pytest.raises(HarnessError, match=r"text_a"):
-        check_text_fields(parse_template("A: {text_a}?", key="method.template", allowed=TASK_FIELDS), is_pair=True)
+        check_text_fields(t, ("text",))
+    pair = parse_template("A: {question}\nB: {reply}\nSame?", key="method.template", allowed=PAIR_FIELDS)
+    check_text_fields(pair, PAIR)
+    check_text_fields(parse_template("{text}\nSame?", key="method.template", allowed=PAIR_FIELDS), PAIR)
+    with pytest.raises(HarnessError, match=r"a pair task needs \{question\}, \{reply\} \(or \{text\}\)"):
+        check_text_fields(parse_template("A: {question}?", key="method.template", allowed=PAIR_FIELDS), PAIR)
+    # a single-text task knows no column placeholders: the error lists the ones it allows
+    with pytest.raises(HarnessError, match=r"placeholder \{question\} is not allowed; use only \{text\}, \{demos\}"):
+        parse_template("A: {question}", key="method.template", allowed=TASK_FIELDS)
+
+
+@pytest.mark.parametrize("columns, fields", [
+    ("text", ("text",)), ("body", ("text",)), (("question", "reply"), ("text", "question", "reply")),
+    (("q_1", "answer"), ("text", "q_1", "answer")),
+])
+def test_text_fields_name_a_pair_by_its_columns(columns, fields) -> None:
+    assert text_fields(columns) == fields
+    values = text_values(("Is it down?", "Restart it."), fields) if len(fields) == 3 else text_values("hi", fields)
+    assert set(values) == set(fields)
+    if len(fields) == 3:
+        assert values["text"] == "Is it down?\nRestart it." and values[fields[1]] == "Is it down?"
+
+
+@pytest.mark.parametrize("columns, why", [(("customer question", "reply"), "not a plain name"),
+                                          (("text", "reply"), "reserved"), (("label", "reply"), "reserved")])
+def test_pair_columns_that_cannot_be_placeholders_are_refused(columns, why) -> None:
+    with pytest.raises(HarnessError, match=rf"task\.text: column '{columns[0]}' .*{why}.*rename the column"):
+        text_fields(columns)
 
 
 def test_label_words_default_and_errors() -> None:
@@ -142,8 +167,8 @@ def test_truncation_cuts_the_text_and_keeps_the_template_tail(gpt_tok) -> None:
 
 
 def test_pair_truncation_cuts_the_longer_text_first(gpt_tok) -> None:
-    t = parse_template("Q: {text_a}\nA: {text_b}\nOK?", key="method.template", allowed=TASK_FIELDS)
-    builder = PromptBuilder(t, gpt_tok, limit=30, lead=(), trail=(), limit_key="train.max_length")
+    t = parse_template("Q: {question}\nA: {reply}\nOK?", key="method.template", allowed=PAIR_FIELDS)
+    builder = PromptBuilder(t, gpt_tok, limit=30, lead=(), trail=(), limit_key="train.max_length", fields=PAIR)
     question, reply = "Is the router broken?", "Please restart the router and wait for the lights. " * 5
     decoded = gpt_tok.decode(list(builder.build((question, reply))))
     assert decoded.startswith(f"Q: {question}\nA: Please restart") and decoded.endswith("\nOK?")

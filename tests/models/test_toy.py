@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import re
 import threading
-import time
 from pathlib import Path
 
 import pytest
@@ -199,12 +198,9 @@ def _tensors(folder: Path) -> dict[str, torch.Tensor]:
 
 @pytest.mark.parametrize("kind", TOY_KINDS)
 def test_rebuild_is_deterministic_and_seed_matters(tmp_path: Path, corpus, kind) -> None:
-    start = time.perf_counter()
     first = build_toy(kind, tmp_path / "a", texts=corpus, seed=0)
-    elapsed = time.perf_counter() - start
     again = build_toy(kind, tmp_path / "b", texts=corpus, seed=0)
     other = build_toy(kind, tmp_path / "c", texts=corpus, seed=1)
-    assert elapsed < 10.0
     a, b, c = _tensors(first), _tensors(again), _tensors(other)
     assert a.keys() == b.keys() == c.keys()
     assert all(torch.equal(a[name], b[name]) for name in a)

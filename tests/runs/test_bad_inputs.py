@@ -203,8 +203,8 @@ CONFIG_CASES: list[tuple[str, dict[str, Any], list[str], str | None]] = [
     ("misspelt key under --set", {"set": ["train.lerning_rate=1"]}, ["'train.lerning_rate' in --set", "did you mean"],
      "--set"),
     ("pair template on a single text", {"checkpoint": "toy:decoder",
-                                        "method": "kind: next_token\ntemplate: 'Q: {text_a} A: {text_b}'"},
-     ["'method.template'", "pair tasks"], "template:"),
+                                        "method": "kind: next_token\ntemplate: 'Q: {question} A: {reply}'"},
+     ["'method.template'", "placeholder {question} is not allowed", "use only {text}, {demos}"], "template:"),
 ]
 
 

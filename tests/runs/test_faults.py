@@ -30,31 +30,14 @@ from harness.config import load_config
 from harness.experiments.sweep import expand_sweep
 from harness.runs.folders import read_status, run_folder, run_id
 from harness.runs.run import execute_run
-from tests.common import FERRY, ROOT
-
-CONFIG = """\
-task:
-  name: ferry
-  train: {data}/train.csv
-  dev: {data}/dev.csv
-  test: {data}/test.csv
-  id: id
-  max_rows: {rows}
-model:
-  checkpoint: toy:decoder
-method:
-  kind: head
-train: {{epochs: 2, batch_size: 8, learning_rate: 1.0e-3, max_length: 32, seed: 3, threads: 1,
-        checkpoint_every: 3, log_every: 5}}
-eval: {{bootstrap: 50}}
-output: {output}
-{extra}"""
+from tests.common import ROOT, ferry_config
 
 
-def write_config(folder: Path, output: Path, *, rows: int = 160, extra: str = "", name: str = "run.yaml") -> Path:
-    path = folder / name
-    path.write_text(CONFIG.format(data=FERRY, rows=rows, output=output, extra=extra), encoding="utf-8")
-    return path
+def write_config(folder: Path, output: Path, *, rows: int = 160, sweep: dict | None = None,
+                 name: str = "run.yaml") -> Path:
+    """The shared ferry config on the toy decoder, 2 epochs with a checkpoint every 3 steps."""
+    return ferry_config(folder, name, output=output, rows=rows, checkpoint="toy:decoder", sweep=sweep,
+                        train={"epochs": 2, "seed": 3, "checkpoint_every": 3, "log_every": 5}, eval={"bootstrap": 50})
 
 
 def harness_process(*args: str, cwd: Path) -> subprocess.Popen[str]:
@@ -149,7 +132,7 @@ def test_sigint_saves_a_checkpoint_and_exits_130(reference: dict[str, Any], tmp_
 
 def test_killed_sweep_resumes_without_redoing_finished_runs(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = write_config(tmp_path, tmp_path / "runs", rows=96, name="grid.yaml",
-                        extra="sweep:\n  grid:\n    train.seed: [1, 2, 3]\n")
+                        sweep={"grid": {"train.seed": [1, 2, 3]}})
     runs = expand_sweep(load_config(path))
     folders = [run_folder(r) for r in runs]
     proc = harness_process("sweep", str(path), "--no-compare", cwd=tmp_path)

@@ -25,17 +25,14 @@ from harness.runs.folders import read_status
 from harness.runs.predict import load_exported, predict
 from harness.runs.run import encode_split, execute_run
 from harness.train.checkpoints import Interrupted
-from tests.common import FERRY
+from tests.common import ferry_dict
 
 
 def make_cfg(out: Path, checkpoint: str = "toy:decoder", *, method: dict | None = None, **train: object):
-    settings = {"epochs": 1, "batch_size": 16, "learning_rate": 2e-3, "threads": 1, "log_every": 5}
-    settings.update(train)
-    return config_from_dict({
-        "task": {"name": "ferry", "id": "id", **{s: str(FERRY / f"{s}.csv") for s in ("train", "dev", "test")}},
-        "model": {"checkpoint": checkpoint}, "method": method or {"kind": "head"},
-        "train": settings, "eval": {"bootstrap": 50}, "output": str(out),
-    })
+    """The shared ferry config on every row, with this file's training settings (defaults elsewhere)."""
+    settings = {"batch_size": 16, "learning_rate": 2e-3, "log_every": 5, "max_length": None, "seed": None}
+    return config_from_dict(ferry_dict(out, rows=None, checkpoint=checkpoint, method=method or {"kind": "head"},
+                                       train={**settings, **train}, eval={"bootstrap": 50}))
 
 
 def read_predictions(folder: Path) -> list[dict]:

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import csv
 import json
 import math
 import random
@@ -20,25 +19,8 @@ from harness.train.loop import make_optimizer, make_scheduler, planned_steps, tr
 from tests.common import FERRY
 
 
-def _synthetic_task(folder: Path) -> dict[str, str]:
-    """A small three-class CSV task (used only when the sample task is missing)."""
-    words = {"schedule": "what time is the boat", "refund": "money back for my ticket", "lost_item": "left my bag"}
-    paths = {}
-    for split, n in (("train", 60), ("dev", 15), ("test", 15)):
-        path = folder / f"{split}.csv"
-        with path.open("w", newline="") as fh:
-            w = csv.writer(fh)
-            w.writerow(["id", "text", "label"])
-            for i in range(n):
-                label = list(words)[i % 3]
-                w.writerow([f"{split}-{i}", f"{words[label]} number {i}", label])
-        paths[split] = str(path)
-    return paths
-
-
 def make_cfg(tmp_path: Path, checkpoint: str = "toy:decoder", **train: object) -> object:
-    paths = ({s: str(FERRY / f"{s}.csv") for s in ("train", "dev", "test")} if FERRY.exists()
-             else _synthetic_task(tmp_path))
+    paths = {s: str(FERRY / f"{s}.csv") for s in ("train", "dev", "test")}
     settings = {"epochs": 2, "batch_size": 16, "learning_rate": 1e-3, "threads": 1, "log_every": 5, "warmup": 0.1}
     settings.update(train)
     return config_from_dict({

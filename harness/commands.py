@@ -16,6 +16,7 @@ from typing import Any
 
 from harness.errors import HarnessError
 from harness.names import PROGRAM
+from harness.report.cautions import SHORT_CAUTION
 
 __all__ = [
     "agree_command", "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_predict", "cmd_replay", "cmd_run",
@@ -71,6 +72,9 @@ def sweep_command(
         raise HarnessError(f"{summary['data_changed']}; {len(summary['failed'])} runs were not run on one version "
                            f"of it (listed in {Path(summary['folder']) / 'sweep.json'}): run '{PROGRAM} sweep "
                            f"{config_path}' again to redo them on the new version")
+    if "comparison" in summary and is_main_process():
+        print(summary["comparison"]["summary"])
+        print(SHORT_CAUTION)
     return 1 if summary["failed"] else 0
 
 
@@ -119,6 +123,7 @@ def cmd_predict(args: argparse.Namespace) -> int:
     out = args.out or args.input.with_name(args.input.stem + ".predictions.csv")
     predict(args.run_dir, args.input, out)
     print(f"predictions written to {out}")
+    print(SHORT_CAUTION)
     return 0
 
 
@@ -130,8 +135,8 @@ def cmd_audit(args: argparse.Namespace) -> int:
 
     cfg = load_config(args.config, args.overrides)
     data = load_task(cfg.task, seed=cfg.train.seed)
-    counter = _token_counter(cfg)
-    report = audit_data(data, max_length=cfg.train.max_length, count_tokens=counter)
+    counter, positions = _token_counter(cfg)
+    report = audit_data(data, max_length=cfg.train.max_length, count_tokens=counter, positions=positions)
     out = args.out or Path(cfg.output) / cfg.task.name
     print(render_audit(report, str(args.config)), end="")
     json_path, md_path = write_audit(report, str(args.config), out)
@@ -139,18 +144,20 @@ def cmd_audit(args: argparse.Namespace) -> int:
     return 0
 
 
-def _token_counter(cfg: Any) -> Any:
-    """Token counts with the config's tokenizer (the checkpoint's weights are not loaded)."""
-    from transformers import AutoTokenizer
+def _token_counter(cfg: Any) -> tuple[Any, int | None]:
+    """Token counts with the config's tokenizer, and the checkpoint's position limit (weights are not loaded)."""
+    from transformers import AutoConfig, AutoTokenizer
 
     from harness.data.audit import token_counter
-    from harness.models.backbones import resolve_source
+    from harness.models.backbones import positions_of, resolve_source
 
     source, gguf = resolve_source(cfg.model.checkpoint)
     if cfg.model.trust_remote_code:
         logger.warning("model.trust_remote_code is on: code shipped with %s will run", cfg.model.checkpoint)
-    tokenizer = AutoTokenizer.from_pretrained(source, gguf_file=gguf, trust_remote_code=cfg.model.trust_remote_code)
-    return token_counter(tokenizer)
+    remote = cfg.model.trust_remote_code
+    tokenizer = AutoTokenizer.from_pretrained(source, gguf_file=gguf, trust_remote_code=remote)
+    config = AutoConfig.from_pretrained(source, gguf_file=gguf, trust_remote_code=remote)
+    return token_counter(tokenizer), positions_of(config, tokenizer)
 
 
 def cmd_agree(args: argparse.Namespace) -> int:

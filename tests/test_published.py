@@ -87,8 +87,9 @@ def test_minilm_head_on_sms_spam_reaches_published_accuracy(tmp_path: Path) -> N
     # SVM, from memory). Ours: a 6-layer encoder, 2,000 training messages, one epoch.
     assert metrics["metrics"]["accuracy"] >= 0.97
     # Accuracy alone says little here: answering "ham" always scores ~0.87. Spam F1 >= 0.90 demands
-    # that most spam is caught with few false alarms; a published fine-tuned BERT on this collection
-    # reports spam precision 0.973, recall 0.964, F1 0.969 (model card of niru-nny/SMS_Spam_Detection).
+    # that most spam is caught with few false alarms. A fine-tuned BERT's model card for this collection
+    # gives spam precision, recall and F1 of about 0.97 (from memory, not checked here; no model hub on
+    # these machines); the 0.90 bar sits well below that and well above the majority answer's 0.
     assert metrics["metrics"]["positive_f1"] >= 0.90
 
 
@@ -123,8 +124,9 @@ def test_smollm2_next_token_on_sms_spam_beats_the_majority_baseline(tmp_path: Pa
     gold, predicted = _predictions(folder)
     assert trained["metrics"]["positive_f1"] == pytest.approx(f1_score(gold, predicted, pos_label="spam"))
     # Baseline: answering "ham" (the majority, ~87% of messages) always gives spam F1 = 0 (no true
-    # positives; F1 definition, common practice). A clear margin over it: half the spam caught with
-    # precision to match, at least. Published fine-tuned encoders reach ~0.95 (see the MiniLM check).
+    # positives; F1 definition, common practice). The 0.5 bar is this project's own margin over that
+    # baseline, not a published number: half the spam caught with precision to match, at least, after a
+    # short run (300 messages, one epoch). Published fine-tuned encoders reach ~0.95 (see the MiniLM check).
     assert trained["metrics"]["positive_f1"] >= 0.5
 
     # The prompt run scored the same test rows, and its record is a complete, consistent metrics dict.

@@ -5,6 +5,7 @@ from __future__ import annotations
 import difflib
 import re
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 from harness.config.schema import Config
@@ -70,6 +71,7 @@ def check_values(cfg: Config, where: Callable[[str], str]) -> None:
     need(ev.bootstrap >= 0, "eval.bootstrap", "0 or more", ev.bootstrap)
     need(0.5 <= ev.ci <= 0.999, "eval.ci", "between 0.5 and 0.999", ev.ci)
     need(ev.worst >= 0, "eval.worst", "0 or more", ev.worst)
+    _check_output(cfg.output, where)
     from harness.metrics.scores import METRICS  # late: metrics imports nothing from here
 
     if ev.primary not in METRICS:
@@ -94,3 +96,15 @@ def check_values(cfg: Config, where: Callable[[str], str]) -> None:
                 raise exc.located(where(key)) from None
     if m.kind == "prompt" and m.lora is not None:
         raise HarnessError(f"{where('method.lora')}: method 'prompt' trains nothing; remove method.lora")
+
+
+def _check_output(output: str, where: Callable[[str], str]) -> None:
+    """`output` must be a folder or a path one can become: no part of it may be an existing file."""
+    path = Path(output).expanduser()
+    for part in (path, *path.parents):
+        if part.exists():
+            if not part.is_dir():
+                what = "is a file" if part == path else f"runs through {part}, which is a file"
+                raise HarnessError(f"{where('output')}: {output!r} {what}; give a folder for the run folders "
+                                   "(it is created when missing)")
+            return

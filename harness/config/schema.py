@@ -168,6 +168,8 @@ class EvalConfig:
     ci: float = _doc("confidence level of intervals (0.5-0.999)", 0.95)
     worst: int = _doc("misclassified examples listed in the report", 10)
     extra: tuple[str, ...] = _doc("local folders of extra metrics (evaluate library), loaded by path", ())
+    store_texts: bool = _doc("copy test texts into predictions.jsonl and the report; false = ids and labels "
+                             "only (personal data)", True)
 
 
 @dataclass(frozen=True)

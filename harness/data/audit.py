@@ -29,10 +29,12 @@ def token_counter(tokenizer: Any) -> Tokenize:
     """Token counts per text (pairs encoded as pairs) with a checkpoint's tokenizer."""
 
     def count(texts: Sequence[Any]) -> list[int]:
+        # verbose=False: texts longer than the model takes are counted here, not fed to it (runs truncate),
+        # so the library's "will result in indexing errors" warning would not be true
         if texts and isinstance(texts[0], tuple):
-            enc = tokenizer([t[0] for t in texts], [t[1] for t in texts], add_special_tokens=True)
+            enc = tokenizer([t[0] for t in texts], [t[1] for t in texts], add_special_tokens=True, verbose=False)
         else:
-            enc = tokenizer(list(texts), add_special_tokens=True)
+            enc = tokenizer(list(texts), add_special_tokens=True, verbose=False)
         return [len(ids) for ids in enc["input_ids"]]
 
     return count
@@ -46,8 +48,17 @@ def suggest_max_length(lengths: Sequence[int], cover: float = 0.99) -> int:
     return int(max(8, 8 * int(np.ceil(q / 8))))
 
 
-def audit_data(data: TaskData, *, max_length: int | None = None, count_tokens: Tokenize | None = None) -> dict[str, Any]:
-    """All checks as one JSON-ready dict; `findings` lists every counted warning in plain words."""
+def audit_data(data: TaskData, *, max_length: int | None = None, count_tokens: Tokenize | None = None,
+               positions: int | None = None) -> dict[str, Any]:
+    """All checks as one JSON-ready dict; `findings` lists every counted warning in plain words.
+
+    `positions` is the longest input the checkpoint takes: a `max_length` above it is cut to it (as the
+    run does), so truncation is counted against the length that will be used, and the suggested
+    length never exceeds it.
+    """
+    configured = max_length
+    if max_length is not None and positions is not None and max_length > positions:
+        max_length = positions
     names = data.label_names
     findings: list[str] = []
     out: dict[str, Any] = {"labels": list(names), "pairs": data.is_pair, "splits": {}, "notes": list(data.notes)}
@@ -76,8 +87,10 @@ def audit_data(data: TaskData, *, max_length: int | None = None, count_tokens: T
             lengths = count_tokens(split.texts)
             info["tokens"] = _length_summary(lengths, max_length)
             if max_length and info["tokens"]["truncated"]:
+                cut = "" if max_length == configured else f" (train.max_length {configured} is cut to the checkpoint's " \
+                                                          f"{positions} positions)"
                 findings.append(
-                    f"{split.name}: {info['tokens']['truncated']} texts exceed max_length {max_length} and will be cut"
+                    f"{split.name}: {info['tokens']['truncated']} texts exceed max_length {max_length}{cut} and will be cut"
                 )
         out["splits"][split.name] = info
     ratio = out["splits"]["train"]["imbalance_ratio"]
@@ -89,8 +102,11 @@ def audit_data(data: TaskData, *, max_length: int | None = None, count_tokens: T
             findings.append(f"{pair}: {n} texts appear in both splits; scores on the second are inflated")
     if count_tokens is not None:
         train_len = count_tokens(data.train.texts)
-        out["suggested_max_length"] = suggest_max_length(train_len)
+        suggested = suggest_max_length(train_len)
+        out["suggested_max_length"] = suggested if positions is None else min(suggested, positions)
         out["max_length"] = max_length
+        out["max_length_configured"] = configured
+        out["positions"] = positions
     out["findings"] = findings
     return out
 
@@ -137,8 +153,13 @@ def render_audit(report: dict[str, Any], source: str) -> str:
         for name, s in report["splits"].items():
             t = s["tokens"]
             lines.append(f"| {name} | {t['p50']} | {t['p90']} | {t['p95']} | {t['p99']} | {t['max']} | {t['truncated']} |")
-        lines += ["", f"Suggested max_length (covers 99% of training texts): {report['suggested_max_length']} "
-                  f"(configured: {report['max_length']}). Attention cost grows with the square of the length.", ""]
+        configured, used = report.get("max_length_configured", report["max_length"]), report["max_length"]
+        setting = f"configured: {configured}" + ("" if used == configured else
+                                                 f", used: {used}, the checkpoint's {report['positions']} positions")
+        lines += ["", "Suggested max_length (covers 99% of training texts"
+                  + (f", within the checkpoint's {report['positions']} positions" if report.get("positions") else "")
+                  + f"): {report['suggested_max_length']} ({setting}). "
+                  "Attention cost grows with the square of the length.", ""]
     for note in report.get("notes", []):
         lines.append(f"- note: {note}")
     if report["findings"]:

@@ -12,6 +12,7 @@ so growth from run to run (a leak) shows.
 from __future__ import annotations
 
 import itertools
+import json
 import logging
 import re
 import time
@@ -49,8 +50,22 @@ def _lookup(data: dict[str, Any], key: str) -> Any:
     return node
 
 
-def _expand(cfg: Config) -> tuple[list[Config], list[int]]:
-    """The runs, and how many combinations each exclude rule removed."""
+def _seed_free_key(run: Config) -> str | None:
+    """For a run that does not depend on train.seed (zero-shot `prompt`: no training, no demonstrations
+    drawn, the splits carved with task.split_seed), its config without the seed; else None."""
+    if run.method.kind != "prompt" or run.method.shots != 0:
+        return None
+    data = config_to_dict(run)
+    data["train"].pop("seed")
+    return json.dumps(data, sort_keys=True)
+
+
+def _expand(cfg: Config) -> tuple[list[Config], list[int], int]:
+    """The runs, how many combinations each exclude rule removed, and how many seed-free runs were reused.
+
+    A zero-shot `prompt` run comes out the same for every train.seed: it runs once (with the first
+    seed the grid gives it) and stands for every seed, so no `exclude` rule is needed for it.
+    """
     base = config_to_dict(cfg)
     base["sweep"] = {"grid": {}, "arms": [], "exclude": []}
     keys = list(cfg.sweep.grid)  # file order: dicts keep insertion order
@@ -58,6 +73,8 @@ def _expand(cfg: Config) -> tuple[list[Config], list[int]]:
     hits = [0] * len(rules)
     runs: list[Config] = []
     seen: dict[str, int] = {}
+    seed_free: set[str] = set()
+    reused = 0
     arms = [dict(arm) for arm in cfg.sweep.arms] or [{}]
     # arms outermost (each arm's runs together), then the grid in file order
     combos = [(arm, combo) for arm in arms for combo in itertools.product(*(cfg.sweep.grid[k] for k in keys))]
@@ -75,13 +92,19 @@ def _expand(cfg: Config) -> tuple[list[Config], list[int]]:
             hits[i] += 1
         if matched:
             continue
+        free = _seed_free_key(run)
+        if free is not None and free in seed_free:
+            reused += 1
+            continue
+        if free is not None:
+            seed_free.add(free)
         rid = run_id(run)
         if rid in seen:
             raise HarnessError(f"{cfg.source}: sweep combinations {seen[rid] + 1} and {n + 1} give the same run "
                                f"{rid}; remove the repeated value from sweep.grid")
         seen[rid] = n
         runs.append(run)
-    return runs, hits
+    return runs, hits, reused
 
 
 def expand_sweep(cfg: Config) -> list[Config]:
@@ -214,13 +237,13 @@ def run_sweep(
     cfg: Config, name: str, *, shard: tuple[int, int] | None = None, compare: bool = True, log: Log = logger.info
 ) -> dict[str, Any]:
     """Run every (shard's) run of the sweep; write sweep.json; compare the finished runs at the end."""
-    runs, hits = _expand(cfg)
+    runs, hits, reused = _expand(cfg)
     folder = sweep_folder(cfg, name)
     picked = [i for i in range(len(runs)) if shard is None or i % shard[1] == shard[0]]
     start = _hash_data([runs[i] for i in picked])
     meta = {"sweep": name, "config": cfg.source, "grid": list(cfg.sweep.grid), "runs_total": len(runs),
             "shard": None if shard is None else f"{shard[0]}/{shard[1]}", "data_files": start}
-    _note_rules(cfg, hits, log)
+    _note_rules(cfg, hits, reused, log)
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
     states: dict[int, str] = {}
     memory: dict[int, dict[str, float | None]] = {}
@@ -273,16 +296,19 @@ def _changed_since(start: dict[str, str]) -> str | None:
     return None
 
 
-def _note_rules(cfg: Config, hits: list[int], log: Log) -> None:
+def _note_rules(cfg: Config, hits: list[int], reused: int, log: Log) -> None:
     for i, count in enumerate(hits):
         if count == 0:
             log(f"note: sweep.exclude[{i}] in {cfg.source} matches no combination (a misspelt value?)")
+    if reused:
+        log(f"note: {reused} zero-shot prompt combinations differ only in train.seed, which zero-shot scoring does "
+            "not use; each such run is done once and stands for every seed")
 
 
 def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log) -> None:
     """Log the runs a sweep (or one shard of it) would do, with their estimated cost; run nothing."""
-    runs, hits = _expand(cfg)
-    _note_rules(cfg, hits, log)
+    runs, hits, reused = _expand(cfg)
+    _note_rules(cfg, hits, reused, log)
     picked = [i for i in range(len(runs)) if shard is None or i % shard[1] == shard[0]]
     plan = estimate_runs([runs[i] for i in picked])
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {shard[0]}/{shard[1]}: {len(picked)}")

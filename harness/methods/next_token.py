@@ -143,7 +143,7 @@ class NextTokenMethod:
 
     @property
     def _demo_ids(self) -> tuple[int, ...]:
-        return tuple(self.tokenizer.encode(self.demos, add_special_tokens=False)) if self.demos else ()
+        return tuple(self.tokenizer.encode(self.demos, add_special_tokens=False, verbose=False)) if self.demos else ()
 
     def collate(self, items: Sequence[Encoded]) -> dict[str, torch.Tensor]:
         """Right-padded ids and mask, token targets (IGNORE_INDEX off the label words) and class labels."""

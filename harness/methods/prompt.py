@@ -139,7 +139,7 @@ class PromptMethod(NextTokenMethod):
                                       self.labels.words, self.fields)
         # The example keeps train.max_length tokens; demonstrations get what is left of the context.
         budget = (position_limit(self.backbone) or _UNBOUNDED_CONTEXT) - self.max_length
-        kept = fit_demonstrations(demos, lambda s: len(self.tokenizer.encode(s, add_special_tokens=False)), budget)
+        kept = fit_demonstrations(demos, lambda s: len(self.tokenizer.encode(s, add_special_tokens=False, verbose=False)), budget)
         self.demos = "".join(kept)
         self.demo_rows = [train.ids[i] for i in idx[: len(kept)]]
 

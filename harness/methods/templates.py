@@ -269,7 +269,9 @@ class PromptBuilder:
 
     def ids(self, values: Mapping[str, str], demos: str) -> tuple[int, ...]:
         text = self.template.render({**values, "demos": demos})
-        return self.lead + tuple(self.tokenizer.encode(text, add_special_tokens=False)) + self.trail
+        # verbose=False: a long text is measured here and cut below, so the library's "longer than the
+        # maximum ... indexing errors" warning would not be true
+        return self.lead + tuple(self.tokenizer.encode(text, add_special_tokens=False, verbose=False)) + self.trail
 
     def build(self, text: str | tuple[str, str], demos: str = "", extra_limit: int = 0) -> tuple[int, ...]:
         """Prompt ids of one example, at most `limit + extra_limit` long; the longer text is cut first."""
@@ -287,7 +289,7 @@ class PromptBuilder:
 
     def _cut(self, text: str, tokens: int) -> str:
         """`text` without its last `tokens` tokens, cut at a character offset so no byte is split."""
-        enc = self.tokenizer(text, add_special_tokens=False, return_offsets_mapping=True)
+        enc = self.tokenizer(text, add_special_tokens=False, return_offsets_mapping=True, verbose=False)
         offsets = enc["offset_mapping"]
         keep = max(len(offsets) - tokens, 0)
         return text[: offsets[keep - 1][1]] if keep else ""

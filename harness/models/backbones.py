@@ -236,8 +236,13 @@ def _fix_padding(backbone: Backbone) -> None:
 
 def position_limit(backbone: Backbone) -> int | None:
     """The longest input the model can take (absolute position embeddings), or None when unbounded."""
-    limits = [getattr(backbone.config, name, None) for name in ("max_position_embeddings", "n_positions", "n_ctx")]
-    tok_max = getattr(backbone.tokenizer, "model_max_length", None)
+    return positions_of(backbone.config, backbone.tokenizer)
+
+
+def positions_of(config: Any, tokenizer: Any) -> int | None:
+    """`position_limit` from a checkpoint's config and tokenizer alone (no weights loaded)."""
+    limits = [getattr(config, name, None) for name in ("max_position_embeddings", "n_positions", "n_ctx")]
+    tok_max = getattr(tokenizer, "model_max_length", None)
     # Tokenizers without a recorded limit report a huge sentinel (about 1e30).
     if isinstance(tok_max, int) and tok_max < 1_000_000:
         limits.append(tok_max)

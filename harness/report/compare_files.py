@@ -15,6 +15,7 @@ from typing import Any
 from harness.files import atomic_write_json, atomic_write_text
 from harness.metrics.scores import HEADLINE, METRICS
 from harness.report import plots
+from harness.report.cautions import CAUTIONS, SHORT_CAUTION
 from harness.report.render import (
     Block,
     Bullets,
@@ -87,7 +88,7 @@ def _other_table(result: dict[str, Any]) -> Table:
 def _blocks(result: dict[str, Any], figures: dict[str, bytes]) -> list[Block]:
     blocks: list[Block] = [
         Heading(f"Comparison of {result['runs']} runs on {result['test_rows']} test rows", 1),
-        Para(result["summary"]),
+        Para(result["summary"]), Para(SHORT_CAUTION + " More under 'Before you act on this' below."),
         Heading(f"{result['display']} by group, best first"), quality_table(result),
         Bullets((
             "mean ± sd: over seeds, sample standard deviation (ddof=1); min to max: the seeds' extremes.",
@@ -108,6 +109,7 @@ def _blocks(result: dict[str, Any], figures: dict[str, bytes]) -> list[Block]:
     if "data_efficiency.png" in figures:
         blocks += [Heading("Data efficiency"),
                    Image("data_efficiency.png", figures["data_efficiency.png"], "data efficiency curve")]
+    blocks += [Heading("Before you act on this"), Bullets(CAUTIONS)]
     if _others(result):
         blocks += [Heading("Other metrics"), _other_table(result)]
     if result["incomplete"]:
@@ -168,4 +170,4 @@ def write_comparison(result: dict[str, Any], out_dir: Path) -> list[Path]:
 
 def terminal_text(result: dict[str, Any]) -> str:
     """What `tiltyard compare` prints: the quality and cost tables and the summary line, as Markdown."""
-    return to_markdown([quality_table(result), cost_table(result), Para(result["summary"])])
+    return to_markdown([quality_table(result), cost_table(result), Para(result["summary"]), Para(SHORT_CAUTION)])

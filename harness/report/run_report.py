@@ -18,6 +18,7 @@ from harness.errors import HarnessError
 from harness.files import read_json
 from harness.metrics.scores import HEADLINE, METRICS
 from harness.report import plots
+from harness.report.cautions import CAUTIONS
 from harness.report.render import Block, Bullets, Heading, Image, Para, fmt, table, write_documents
 from harness.runs.folders import require_finished
 
@@ -128,11 +129,11 @@ def _worst(run: dict[str, Any], labels: list[str], limit: int) -> list[dict[str,
         if row.get("gold") == row.get("predicted"):
             continue
         probs = row.get("probs") or {}
-        text = row.get("text", "")
-        text = " ‖ ".join(text) if isinstance(text, list) else str(text)
+        raw = row.get("text")
+        text = None if raw is None else " ‖ ".join(raw) if isinstance(raw, list) else str(raw)
         wrong.append({
             "id": str(row.get("id", "?")),
-            "text": text if len(text) <= _TEXT_CHARS else text[: _TEXT_CHARS - 1] + "…",
+            "text": text if text is None or len(text) <= _TEXT_CHARS else text[: _TEXT_CHARS - 1] + "…",
             "gold": row.get("gold"),
             "predicted": row.get("predicted"),
             "p_gold": float(probs.get(row.get("gold"), 0.0)),
@@ -192,6 +193,7 @@ def _caveats(report: dict[str, Any]) -> list[str]:
         "per group on data that records those groups, and have a person review, and be able to overturn, "
         "what the classifier decides."
     )
+    items += [c for c in CAUTIONS if c.startswith(("Pretrained", "Labels can", "Data drifts"))]
     items.append(
         "The intervals cover the sampling of test rows only. Another seed or another training sample moves "
         "the scores too: run several seeds and put them side by side with `tiltyard compare`."
@@ -260,10 +262,15 @@ def report_blocks(report: dict[str, Any]) -> list[Block]:
         ]),
         Heading("Most confident mistakes"),
     ]
-    if report["worst"]:
+    if report["worst"] and any(w["text"] is not None for w in report["worst"]):
         blocks.append(table(["id", "text", "gold", "predicted", "p(gold)"],
                             [[w["id"], w["text"], w["gold"], w["predicted"], w["p_gold"]] for w in report["worst"]],
                             caption="Misclassified test rows with the lowest probability on the gold label."))
+    elif report["worst"]:  # eval.store_texts: false
+        blocks.append(table(["id", "gold", "predicted", "p(gold)"],
+                            [[w["id"], w["gold"], w["predicted"], w["p_gold"]] for w in report["worst"]],
+                            caption="Misclassified test rows with the lowest probability on the gold label; "
+                                    "texts are not stored (eval.store_texts: false), look them up by id."))
     else:
         blocks.append(Para("No test row was misclassified."))
     blocks += [Heading("Before you rely on this"), Bullets(tuple(_caveats(report)))]

@@ -41,6 +41,7 @@ from harness.files import (
 from harness.methods.batches import count_parameters
 from harness.methods.registry import Encoded, Method, build_method
 from harness.metrics.scores import compute_metrics
+from harness.models.backbones import position_limit
 from harness.report.run_report import write_run_report
 from harness.runs.folders import environment_info, read_status, run_folder, write_status
 from harness.train.checkpoints import Interrupted
@@ -120,8 +121,10 @@ def _load_inputs(cfg: Config, resume_from: Path | None) -> tuple[TaskData, Metho
             _check_same_data(resume_from, data)
         method = build_method(cfg.method.kind, cfg=cfg, data=data)
         tokenizer = getattr(method, "tokenizer", None)
+        backbone = getattr(method, "backbone", None)
         audit = audit_data(data, max_length=cfg.train.max_length,
-                           count_tokens=token_counter(tokenizer) if tokenizer is not None else None)
+                           count_tokens=token_counter(tokenizer) if tokenizer is not None else None,
+                           positions=position_limit(backbone) if backbone is not None else None)
         encoded = [encode_split(method, s, cfg)[0] for s in data.splits()]
     except HarnessError as exc:
         raise _in_config(cfg, exc) from None
@@ -135,13 +138,16 @@ def _save_model(method: Method, target: Path) -> None:
         method.save(tmp)
 
 
-def _predictions(split: Split, probs: Any, label_names: Sequence[str]) -> str:
+def _predictions(split: Split, probs: Any, label_names: Sequence[str], *, texts: bool) -> str:
+    """predictions.jsonl: one row per test example; `texts=False` leaves the raw text out (eval.store_texts)."""
     lines = []
     for row_id, text, gold, p in zip(split.ids, split.texts, split.labels, probs, strict=True):
-        lines.append(json.dumps({
-            "id": row_id, "text": list(text) if isinstance(text, tuple) else text, "gold": label_names[gold],
-            "predicted": label_names[int(p.argmax())], "probs": {n: float(v) for n, v in zip(label_names, p, strict=True)},
-        }, ensure_ascii=False))
+        row: dict[str, Any] = {"id": row_id}
+        if texts:
+            row["text"] = list(text) if isinstance(text, tuple) else text
+        row.update({"gold": label_names[gold], "predicted": label_names[int(p.argmax())],
+                    "probs": {n: float(v) for n, v in zip(label_names, p, strict=True)}})
+        lines.append(json.dumps(row, ensure_ascii=False))
     return "\n".join(lines) + "\n"
 
 
@@ -209,7 +215,8 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
             if result is not None:
                 metrics["dev"] = {"best_step": result.best_step, cfg.eval.primary: result.best_value,
                                   "metrics": result.best_metrics, "stopped_early": result.stopped_early}
-            atomic_write_text(folder / "predictions.jsonl", _predictions(data.test, probs, data.label_names))
+            atomic_write_text(folder / "predictions.jsonl", _predictions(data.test, probs, data.label_names,
+                                                                         texts=cfg.eval.store_texts))
             atomic_write_json(folder / "metrics.json", metrics)
             _save_model(method, folder / "model")
             atomic_write_json(folder / "method.json", method.describe())

@@ -39,10 +39,13 @@ def _pairs_from_table(cells: dict[tuple[str, str], int]) -> tuple[list[tuple[str
     return a, b
 
 
-def test_published_two_by_two_example(tmp_path: Path) -> None:
-    # Worked example: 50 grant proposals, two readers; 20 both yes, 5 A-yes/B-no, 10 A-no/B-yes, 15 both no:
-    # p_o = 0.70, p_e = 0.50, kappa = 0.40. Source: http://howcodex.com/statistics/cohen_kappa_coefficient.htm
-    # (the same example as the Wikipedia article "Cohen's kappa").
+def test_worked_two_by_two_example(tmp_path: Path) -> None:
+    # Source of the definition: Cohen, J. (1960), "A coefficient of agreement for nominal scales",
+    # Educational and Psychological Measurement 20(1), 37-46: kappa = (p_o - p_e) / (1 - p_e), p_e the
+    # agreement expected from the two raters' marginals (from memory). The counts are a 2x2 worked example
+    # computed by hand here:
+    # 50 grant proposals, two readers; 20 both yes, 5 A-yes/B-no, 10 A-no/B-yes, 15 both no:
+    # p_o = 35/50 = 0.70, p_e = (25/50)(30/50) + (25/50)(20/50) = 0.50, kappa = 0.20/0.50 = 0.40.
     a, b = _pairs_from_table({("yes", "yes"): 20, ("yes", "no"): 5, ("no", "yes"): 10, ("no", "no"): 15})
     ra = read_labels(_write_csv(tmp_path / "a.csv", a))
     rb = read_labels(_write_csv(tmp_path / "b.csv", b))
@@ -64,9 +67,13 @@ def test_published_two_by_two_example(tmp_path: Path) -> None:
     assert report["band"] == "fair"
 
 
-def test_second_published_example() -> None:
-    # 20 patients, two doctors: 12 both yes, 2 A-no/B-yes, 4 A-yes/B-no, 2 both no -> Pr(a) = 0.7,
-    # Pr(e) = 0.62, kappa = 0.08 / 0.38 = 0.21. Source: https://www.easycalculation.com/statistics/learn-cohens-kappa-index.php
+def test_second_worked_example() -> None:
+    # Source of the definition: Cohen, J. (1960), "A coefficient of agreement for nominal scales",
+    # Educational and Psychological Measurement 20(1), 37-46: kappa = (p_o - p_e) / (1 - p_e), p_e the
+    # agreement expected from the two raters' marginals (from memory). The counts are a 2x2 worked example
+    # computed by hand here:
+    # 20 patients, two doctors: 12 both yes, 2 A-no/B-yes, 4 A-yes/B-no, 2 both no -> p_o = 14/20 = 0.7,
+    # p_e = (16/20)(14/20) + (4/20)(6/20) = 0.56 + 0.06 = 0.62, kappa = 0.08 / 0.38 = 0.21.
     a, b = _pairs_from_table({("yes", "yes"): 12, ("no", "yes"): 2, ("yes", "no"): 4, ("no", "no"): 2})
     report = agreement(dict(a), dict(b), resamples=0)
     assert report["kappa"] == pytest.approx(0.08 / 0.38, abs=1e-12)

@@ -10,6 +10,7 @@ from sklearn.model_selection import train_test_split
 
 from harness.config import TaskConfig
 from harness.data.audit import audit_data, render_audit, suggest_max_length
+from harness.data.readers import MAX_CELL_CHARS
 from harness.data.task import load_task, read_rows, stratified_carve, subsample
 from harness.errors import HarnessError
 from tests.common import ROOT
@@ -53,62 +54,49 @@ def test_sample_tasks_load() -> None:
 
 # --- bad data: each a one-line error naming the file and the row -------------------------------
 
-def test_missing_column(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, "id,body,label\nr1,hi,a\nr2,yo,b\n", HEADER + ROWS, HEADER + ROWS))
-    assert "train.csv" in msg and "no column 'text'" in msg and "task.text" in msg and "body" in msg
+_JSONL_NAN = '{"id": "1", "text": "hi", "label": "a"}\n{"id": "2", "text": "yo", "label": NaN}\n'
+_JSONL_CUT = '{"id": "1", "text": "hi", "label": "a"}\n{"id": "2", "text": "yo"\n'
+_GOOD = HEADER + ROWS
+# (case, train, dev, test, file name of train, extra TaskConfig settings, words the one-line error must hold)
+BAD_DATA = [
+    ("missing column", "id,body,label\nr1,hi,a\nr2,yo,b\n", _GOOD, _GOOD, "train.csv", {},
+     ["train.csv", "no column 'text'", "task.text", "body"]),
+    ("empty split", _GOOD, HEADER, _GOOD, "train.csv", {}, ["dev.csv", "no data rows"]),
+    ("empty file", "", _GOOD, _GOOD, "train.csv", {}, ["train.csv is empty"]),
+    ("empty text", _GOOD + "r99,  ,a\n", _GOOD, _GOOD, "train.csv", {}, ["train.csv line 22", "empty text"]),
+    ("NaN label in JSONL", _JSONL_NAN, _JSONL_NAN, _JSONL_NAN, "train.jsonl", {}, ["train.jsonl line 2", "missing label"]),
+    ("label outside the declared set", _GOOD, _GOOD + "x1,odd one,c\n", _GOOD, "train.csv", {"labels": ("a", "b")},
+     ["dev.csv line 22", "'c' is not in task.labels"]),
+    ("ragged row", _GOOD + "r50,a text, with comma,b\n", _GOOD, _GOOD, "train.csv", {},
+     ["train.csv line 22", "4 fields where the header has 3", "quote"]),
+    ("undecodable bytes", (_GOOD).encode() + b"r77,caf\xe9 latte,a\n", _GOOD, _GOOD, "train.csv", {},
+     ["train.csv line 22", "not valid UTF-8"]),
+    ("test label unseen in train", _GOOD, _GOOD, _GOOD + "z1,new kind,c\n", "train.csv", {},
+     ["test.csv line 22", "never occurs in train", "task.labels"]),
+    ("single class in train", HEADER + "".join(f"r{i},text {i},a\n" for i in range(5)), _GOOD, _GOOD, "train.csv", {},
+     ["single class", "train.csv"]),
+    ("duplicate ids", _GOOD + "r1,again,a\n", _GOOD, _GOOD, "train.csv", {}, ["id 'r1' appears 2 times"]),
+    ("broken JSON line", _JSONL_CUT, _JSONL_CUT, _JSONL_CUT, "train.jsonl", {}, ["train.jsonl line 2", "not valid JSON"]),
+    ("cell over the length limit", HEADER + "r1,\"" + "x" * (MAX_CELL_CHARS + 1) + "\",a\n" + ROWS, _GOOD, _GOOD,
+     "train.csv", {}, ["train.csv line 2", f"longer than {MAX_CELL_CHARS:,} characters", "shorten it"]),
+]
 
 
-def test_empty_split(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, HEADER + ROWS, HEADER, HEADER + ROWS))
-    assert "dev.csv" in msg and "no data rows" in msg
+@pytest.mark.parametrize("case, train, dev, test, name, extra, words", BAD_DATA, ids=[c[0] for c in BAD_DATA])
+def test_bad_data_is_one_line_naming_file_and_row(tmp_path: Path, case: str, train: str, dev: str, test: str,
+                                                  name: str, extra: dict, words: list[str]) -> None:
+    msg = error_of(task(tmp_path, train, dev, test, name=name, **extra))
+    for word in words:
+        assert word in msg, msg
 
 
-def test_empty_file(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, "", HEADER + ROWS, HEADER + ROWS))
-    assert "train.csv is empty" in msg
-
-
-def test_empty_text(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, HEADER + ROWS + "r99,  ,a\n", HEADER + ROWS, HEADER + ROWS))
-    assert "train.csv line 22" in msg and "empty text" in msg
-
-
-def test_nan_label_in_jsonl(tmp_path: Path) -> None:
-    body = '{"id": "1", "text": "hi", "label": "a"}\n{"id": "2", "text": "yo", "label": NaN}\n'
-    msg = error_of(task(tmp_path, body, body, body, name="train.jsonl"))
-    assert "train.jsonl line 2" in msg and "missing label" in msg
-
-
-def test_label_outside_declared_set(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, HEADER + ROWS, HEADER + ROWS + "x1,odd one,c\n", HEADER + ROWS, labels=("a", "b")))
-    assert "dev.csv line 22" in msg and "'c' is not in task.labels" in msg
-
-
-def test_ragged_row(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, HEADER + ROWS + "r50,a text, with comma,b\n", HEADER + ROWS, HEADER + ROWS))
-    assert "train.csv line 22" in msg and "4 fields where the header has 3" in msg and "quote" in msg
-
-
-def test_undecodable_bytes(tmp_path: Path) -> None:
-    body = (HEADER + ROWS).encode() + b"r77,caf\xe9 latte,a\n"
-    msg = error_of(task(tmp_path, body, HEADER + ROWS, HEADER + ROWS))  # type: ignore[arg-type]
-    assert "train.csv line 22" in msg and "not valid UTF-8" in msg
-
-
-def test_test_label_unseen_in_train(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, HEADER + ROWS, HEADER + ROWS, HEADER + ROWS + "z1,new kind,c\n"))
-    assert "test.csv line 22" in msg and "never occurs in train" in msg and "task.labels" in msg
-
-
-def test_single_class_train(tmp_path: Path) -> None:
-    body = HEADER + "".join(f"r{i},text {i},a\n" for i in range(5))
-    msg = error_of(task(tmp_path, body, HEADER + ROWS, HEADER + ROWS))
-    assert "single class" in msg and "train.csv" in msg
-
-
-def test_duplicate_ids(tmp_path: Path) -> None:
-    msg = error_of(task(tmp_path, HEADER + ROWS + "r1,again,a\n", HEADER + ROWS, HEADER + ROWS))
-    assert "id 'r1' appears 2 times" in msg
+def test_a_long_document_in_one_cell_is_read_whole(tmp_path: Path) -> None:
+    # 200,000 characters: over the csv module's own 131,072-character field limit (its documented default)
+    long = "a long report about the crossing " * 6061
+    assert len(long) > 131_072
+    cfg = task(tmp_path, HEADER + f'doc1,"{long}",a\n' + ROWS, _GOOD, _GOOD)
+    data = load_task(cfg)
+    assert data.train.texts[0] == long
 
 
 def test_missing_file_and_unknown_extension(tmp_path: Path) -> None:
@@ -117,12 +105,6 @@ def test_missing_file_and_unknown_extension(tmp_path: Path) -> None:
     (tmp_path / "x.xlsx").write_text("a")
     msg = error_of(TaskConfig(name="t", train=str(tmp_path / "x.xlsx")))
     assert "'.xlsx'" in msg and "task.format" in msg
-
-
-def test_bad_json_line(tmp_path: Path) -> None:
-    body = '{"id": "1", "text": "hi", "label": "a"}\n{"id": "2", "text": "yo"\n'
-    msg = error_of(task(tmp_path, body, body, body, name="train.jsonl"))
-    assert "train.jsonl line 2" in msg and "not valid JSON" in msg
 
 
 def test_leakage_and_duplicates_are_counted_warnings(tmp_path: Path) -> None:
@@ -211,3 +193,38 @@ def test_case_variants_count_as_one_text_everywhere(tmp_path: Path) -> None:
     assert audit_data(data)["leakage"] == {"train/dev": 0, "train/test": 0, "dev/test": 0}
     deduped = load_task(task(tmp_path, HEADER + rows, HEADER + ROWS, HEADER + ROWS, dedupe=True))
     assert len(deduped.train) == 60
+
+
+def test_audit_counts_truncation_against_the_length_the_checkpoint_allows(tmp_path: Path) -> None:
+    # A checkpoint with 256 positions and train.max_length 992: the run cuts every text to 256 tokens,
+    # so the audit must count against 256 and never suggest more.
+    data = load_task(task(tmp_path, _GOOD, _GOOD, _GOOD))
+    lengths = {t: 300 + i for i, t in enumerate(data.train.texts)}  # every text longer than 256 tokens
+
+    def count(texts):
+        return [lengths.get(t, 300) for t in texts]
+
+    report = audit_data(data, max_length=992, count_tokens=count, positions=256)
+    assert report["max_length"] == 256 and report["max_length_configured"] == 992
+    assert report["splits"]["train"]["tokens"]["truncated"] == len(data.train)
+    assert report["suggested_max_length"] <= 256
+    assert any("exceed max_length 256 (train.max_length 992 is cut to the checkpoint's 256 positions)" in f
+               for f in report["findings"])
+    text = render_audit(report, "c.yaml")
+    assert "used: 256" in text and "configured: 992" in text
+    unbounded = audit_data(data, max_length=992, count_tokens=count)  # no limit known: the configured length
+    assert unbounded["max_length"] == 992 and unbounded["splits"]["train"]["tokens"]["truncated"] == 0
+    assert unbounded["suggested_max_length"] > 256
+
+
+def test_counting_long_texts_does_not_warn_about_indexing_errors(toy_paths: dict[str, Path],
+                                                                caplog: pytest.LogCaptureFixture) -> None:
+    from transformers import AutoTokenizer
+
+    from harness.data.audit import token_counter
+
+    tok = AutoTokenizer.from_pretrained(toy_paths["encoder"])
+    long = "the ferry was late again " * 200  # far over the toy's 256 positions
+    with caplog.at_level("WARNING"):
+        assert token_counter(tok)([long])[0] > tok.model_max_length
+    assert not any("indexing errors" in r.getMessage() for r in caplog.records)

@@ -20,6 +20,7 @@ from harness.cli import main
 from harness.commands import sweep_command
 from harness.config import Config, load_config
 from harness.errors import HarnessError
+from harness.experiments import sweep as sweep_module
 from harness.experiments.sweep import expand_sweep, parse_shard, run_sweep
 from harness.files import file_sha256
 from harness.runs import run as runner
@@ -38,7 +39,7 @@ def _write(tmp_path: Path, sweep: str, *, rows: int = 24, data: Path = FERRY, na
 THREE_WAY = """\
 grid:
   model.checkpoint: [toy:encoder, toy:decoder]
-  method: [{kind: head}, {kind: next_token}, {kind: prompt}]
+  method: [{kind: head}, {kind: next_token}, {kind: prompt, shots: 1}]  # few-shot: seed-dependent
   train.seed: [1, 2]
 """
 
@@ -112,6 +113,26 @@ def test_bad_sweep_key_is_a_config_error_naming_it(tmp_path: Path, sweep: str, w
         assert word in str(err.value)
 
 
+def test_zero_shot_prompt_runs_once_for_every_seed(tmp_path: Path) -> None:
+    sweep = """\
+    arms:
+      - {method.kind: head}
+      - {model.checkpoint: toy:decoder, method.kind: prompt}
+      - {model.checkpoint: toy:decoder, method.kind: prompt, method.shots: 2}
+    grid:
+      train.seed: [1, 2, 3]
+    """
+    cfg = load_config(_write(tmp_path, sweep))
+    runs = expand_sweep(cfg)
+    kinds = [(r.method.kind, r.method.shots, r.train.seed) for r in runs]
+    # zero-shot scoring uses no seed: one run (the first seed); demonstrations are drawn with the seed: three
+    assert kinds == [("head", 0, 1), ("head", 0, 2), ("head", 0, 3), ("prompt", 0, 1),
+                     ("prompt", 2, 1), ("prompt", 2, 2), ("prompt", 2, 3)]
+    lines: list[str] = []
+    sweep_module.plan_sweep(cfg, "grid", None, lines.append)
+    assert any("2 zero-shot prompt combinations differ only in train.seed" in line for line in lines)
+
+
 def test_repeated_combination_is_an_error(tmp_path: Path) -> None:
     with pytest.raises(HarnessError, match="combinations 1 and 2 give the same run"):
         expand_sweep(load_config(_write(tmp_path, "grid:\n  train.seed: [3, 3]\n")))
@@ -168,7 +189,7 @@ def test_dry_run_lists_runs_and_honest_costs(tmp_path: Path, monkeypatch: pytest
     out = capsys.readouterr().out
     for run in expand_sweep(load_config(path)):  # id, checkpoint, method, seed, training rows, state
         assert re.search(rf"{run_id(run)} +toy:encoder +{run.method.kind} +{run.train.seed} +24 new ", out)
-    assert out.count(" new ") == 6  # no finished run to measure from yet:
+    assert out.count(" new ") == 4  # 3 head runs and one zero-shot prompt run for all seeds; none measured yet:
     assert sum(line.endswith(" unknown") for line in out.splitlines()) == 3
     assert "0 s (no training)" in out and "3 runs of unknown cost" in out
     assert not (tmp_path / "runs").exists()  # a dry run writes nothing
@@ -314,7 +335,7 @@ def test_data_file_changed_mid_sweep_is_caught_and_named(tmp_path: Path, monkeyp
     assert digests == {file_sha256(train_csv)}
 
 
-def test_train_size_sweep_draws_a_data_efficiency_curve(tmp_path: Path) -> None:
+def test_train_size_sweep_draws_a_data_efficiency_curve(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     sweep = """\
     grid:
       model.checkpoint: [toy:decoder]
@@ -324,6 +345,8 @@ def test_train_size_sweep_draws_a_data_efficiency_curve(tmp_path: Path) -> None:
     """
     path = _write(tmp_path, sweep, rows=40)
     assert sweep_command(path, []) == 0
+    printed = capsys.readouterr().out  # the verdict line, and the caution beside it
+    assert "Best: " in printed and "do not carry over" in printed and "check error rates per group" in printed
     sweep_dir = tmp_path / "runs" / "ferry" / "sweeps" / "grid"
     png = (sweep_dir / "data_efficiency.png").read_bytes()
     assert png.startswith(b"\x89PNG\r\n\x1a\n")  # the PNG signature (PNG specification, section 5.2)

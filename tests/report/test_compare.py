@@ -122,6 +122,12 @@ def test_command_prints_table_and_where_files_went(sweep: dict[str, Any], tmp_pa
     assert "| group | seeds | Macro-F1 mean ± sd |" in printed
     assert f"left out: {sweep['failed'].name} (failed)" in printed
     assert str(tmp_path) in printed and "comparison.html" in printed
+    # the verdict is read here: the caution travels with it, in the terminal and in every document
+    assert "do not carry over" in printed and "keep a person reviewing them" in printed
+    md, html = (tmp_path / "comparison.md").read_text(), (tmp_path / "comparison.html").read_text()
+    for doc in (md, html):
+        assert "Before you act on this" in doc and "do not carry over" in doc
+        assert "tiltyard agree" in doc and "drifts after deployment" in doc and "biases" in doc
 
 
 def test_different_test_data_is_refused_naming_both_runs(tmp_path: Path) -> None:

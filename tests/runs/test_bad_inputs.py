@@ -251,6 +251,21 @@ def test_pickle_weights_need_allow_pickle(guard: dict[str, Any], toy_paths: dict
     assert main(["--quiet", "run", str(path), "--set", "model.allow_pickle=true"]) == 0  # allowed when asked
 
 
+@pytest.mark.parametrize("verb", ["run", "sweep", "audit"])
+@pytest.mark.parametrize("where", ["the file itself", "a folder below the file"])
+def test_output_that_is_a_file_is_one_line_before_any_work(guard: dict[str, Any], capsys: pytest.CaptureFixture[str],
+                                                           verb: str, where: str) -> None:
+    root = guard["root"]
+    notes = root / "notes.txt"
+    notes.write_text("keep me\n")
+    output = notes if where == "the file itself" else notes / "runs"
+    extra = "sweep:\n  grid:\n    train.seed: [1, 2]\n" if verb == "sweep" else ""
+    path = write_config(root, f"to-a-file-{verb}.yaml", output=output, extra=extra)
+    err = one_line_error(capsys, main([verb, str(path)]))
+    assert "'output'" in err and str(path) in err and "is a file" in err and "give a folder" in err
+    assert notes.read_text() == "keep me\n"  # the file is left as it was
+
+
 def test_task_name_cannot_leave_the_output_folder(guard: dict[str, Any], capsys: pytest.CaptureFixture[str]) -> None:
     root = guard["root"]
     path = write_config(root, "escape.yaml", output=guard["out"])

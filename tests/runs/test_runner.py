@@ -195,3 +195,30 @@ def test_token_cache_is_reused_and_invalidated(tmp_path, monkeypatch):
     method.tokenizer.add_tokens(["ferryboat"])
     assert tokenizer_fingerprint(method.tokenizer) != before
     assert encode_split(method, data.dev, cfg)[1] is False
+
+
+def test_store_texts_off_keeps_ids_and_labels_only(tmp_path: Path) -> None:
+    cfg = config_from_dict(ferry_dict(tmp_path / "runs", rows=24, eval={"bootstrap": 0, "store_texts": False}))
+    folder = execute_run(cfg, log=lambda _: None)
+    rows = read_predictions(folder)
+    assert rows and all(set(r) == {"id", "gold", "predicted", "probs"} for r in rows)
+    data = load_task(cfg.task)
+    report = (folder / "report.md").read_text(encoding="utf-8") + (folder / "report.html").read_text(encoding="utf-8")
+    for text in data.test.texts:  # no test text reaches the reports either
+        assert str(text) not in report
+    assert "texts are not stored" in report
+    # the default keeps them: the same run with texts has every test text in predictions.jsonl
+    on = execute_run(config_from_dict(ferry_dict(tmp_path / "runs2", rows=24, eval={"bootstrap": 0})), log=lambda _: None)
+    assert [r["text"] for r in read_predictions(on)] == list(data.test.texts)
+
+
+def test_predict_through_the_cli_prints_the_caution(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from harness.cli import main
+
+    folder = execute_run(config_from_dict(ferry_dict(tmp_path / "runs", rows=24, eval={"bootstrap": 0})),
+                         log=lambda _: None)
+    source = tmp_path / "new.csv"
+    source.write_text("id,text\nn1,when does the first boat leave\nn2,my bag is still on board\n", encoding="utf-8")
+    assert main(["predict", str(folder), str(source)]) == 0
+    out = capsys.readouterr().out
+    assert "predictions written to" in out and "keep a person reviewing them" in out and "per group" in out

@@ -7,4 +7,5 @@
 | `compare_files` | the comparison's files and terminal text |
 | `plots` | the figures |
 | `render` | one document model rendered as Markdown or HTML |
+| `cautions` | the cautions printed wherever a verdict is read (reports, comparisons, sweep, compare, predict) |
 """

@@ -1,4 +1,4 @@
-"""`harness agree`: agreement between two labelings of the same rows, matched by id."""
+"""`tiltyard agree`: agreement between two labelings of the same rows, matched by id."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""`harness compare`: grouping, seed statistics, paired tests, refusals and the files it writes.
+"""`tiltyard compare`: grouping, seed statistics, paired tests, refusals and the files it writes.
 
 References outside the project: numpy's mean and std(ddof=1) for seed summaries, scikit-learn's
 f1_score for the per-run scores the summaries are built from, scipy.stats.binomtest for the exact

@@ -80,6 +80,21 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--layers", type=int, default=None, help="with --prepare NAME --out DIR: cut to the first N layers")
     p.add_argument("--out", type=Path, default=None, help="folder for a cut checkpoint")
 
+    p = verbs.add_parser("draft", help="write a starter four-arm bake-off config from one labelled data file")
+    p.add_argument("data", type=Path, help="CSV/TSV/JSONL/Parquet file with a text and a label column (the training rows)")
+    p.add_argument("--dev", type=Path, default=None, help="a dev file of the same columns (default: carved from DATA)")
+    p.add_argument("--test", type=Path, default=None, help="a test file of the same columns (default: carved from DATA)")
+    p.add_argument("--text", default=None, metavar="COL[,COL_B]",
+                   help="text column, or two columns for a pair task (default: found by name)")
+    p.add_argument("--label", default=None, metavar="COL", help="label column (default: found by name or values)")
+    p.add_argument("--id", default=None, metavar="COL", help="row id column (default: a unique column named like id)")
+    p.add_argument("--out", type=Path, default=None, help="config file to write (default: <task name>.yaml here)")
+    p.add_argument("--encoder", default="asset:minilm-l6", metavar="CHECKPOINT", help="encoder of the encoder arm")
+    p.add_argument("--decoder", default="asset:smollm2-135m", metavar="CHECKPOINT",
+                   help="decoder of the decoder head, next_token and prompt arms")
+    p.add_argument("--seeds", type=int, default=3, help="seeds per arm in the sweep grid (default: 3)")
+    p.add_argument("--force", action="store_true", help="replace an existing config file")
+
     p = verbs.add_parser("toy", help="build tiny random-weight checkpoints (encoder, decoder, encoder-decoder)")
     p.add_argument("out_dir", type=Path)
     p.add_argument("--seed", type=int, default=0)

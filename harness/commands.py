@@ -19,7 +19,7 @@ from harness.names import PROGRAM
 from harness.report.cautions import SHORT_CAUTION
 
 __all__ = [
-    "agree_command", "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_predict", "cmd_replay", "cmd_run",
+    "agree_command", "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_draft", "cmd_predict", "cmd_replay", "cmd_run",
     "cmd_sweep", "cmd_toy", "compare_command", "replay_command", "sweep_command",
 ]
 
@@ -203,6 +203,50 @@ def cmd_assets(args: argparse.Namespace) -> int:
     for path in assets.prepare(args.prepare, log=print):
         print(f"ready: {path}")
     return 0
+
+
+def cmd_draft(args: argparse.Namespace) -> int:
+    """`draft DATA`: a starter four-arm bake-off config from one labelled file; prints the choices and what next."""
+    from harness.experiments.draft import draft_config
+    from harness.files import atomic_write_text
+
+    text = args.text
+    if text is not None and "," in text:
+        parts = [p.strip() for p in text.split(",")]
+        if len(parts) != 2 or not all(parts):
+            raise HarnessError(f"--text {text!r}: give one column, or two columns as COL_A,COL_B")
+        text = (parts[0], parts[1])
+    out = args.out
+    if out is not None:
+        _check_new_file(out, args.force)
+    draft = draft_config(args.data, dev=args.dev, test=args.test, text=text, label=args.label, id_column=args.id,
+                         encoder=args.encoder, decoder=args.decoder, seeds=args.seeds)
+    if out is None:
+        out = Path(f"{draft.name}.yaml")
+        _check_new_file(out, args.force)
+    cols = draft.columns
+    shown = "+".join(cols.text) if isinstance(cols.text, tuple) else cols.text
+    print(f"columns: text {shown}, label {cols.label}, id {cols.id or '(none: <split>-<row>)'}")
+    for split in draft.data.splits():
+        print(f"{split.name}: {len(split)} rows ({draft.split_origin[split.name]})")
+    print("label words: " + ", ".join(f"{w.label} -> {w.word} ({w.tokens} token{'s' * (w.tokens != 1)})"
+                                      for w in draft.words))
+    lengths = draft.lengths
+    print(f"train.max_length: encoder head {lengths.encoder}, decoder head {lengths.decoder}, "
+          f"next_token/prompt {lengths.prompt} (99% of training texts, within the checkpoints' positions)")
+    print(f"template: {draft.template!r}")
+    for finding in draft.findings:
+        print(f"audit: {finding}")
+    atomic_write_text(out, draft.yaml)
+    print(f"config written to {out}; read its comments, then run: {PROGRAM} sweep {out}")
+    return 0
+
+
+def _check_new_file(out: Path, force: bool) -> None:
+    if out.is_dir():
+        raise HarnessError(f"--out {out} is a folder; give the path of the YAML file to write")
+    if out.exists() and not force:
+        raise HarnessError(f"{out} exists; pass --force to replace it, or --out another file")
 
 
 def cmd_toy(args: argparse.Namespace) -> int:

@@ -12,7 +12,7 @@ import pytest
 from harness.cli import _parser, main
 from tests.common import ROOT
 
-VERBS = ["run", "sweep", "compare", "replay", "predict", "audit", "agree", "assets", "toy"]
+VERBS = ["run", "sweep", "compare", "replay", "predict", "audit", "agree", "assets", "draft", "toy"]
 
 
 def test_python_dash_m_help() -> None:

@@ -118,6 +118,10 @@ class MethodConfig:
     space_prefix: Literal["auto", "always", "never"] = _doc(
         "prefix label words with a space; auto = when the tokenizer is byte-level BPE", "auto"
     )
+    chat: Literal["auto", "always", "never"] = _doc(
+        "next_token/prompt on a decoder: wrap the prompt in the tokenizer's chat template (one user message, then "
+        "the assistant turn start); auto = when the tokenizer has one", "never"
+    )
     score: Literal["sum", "mean"] = _doc("label score: summed or per-token mean log-probability", "sum")
     end_token: bool = _doc("next_token: append the end-of-text token after the label words", False)
     shots: int = _doc("prompt: number of demonstrations drawn from train (0 = zero-shot)", 0)

@@ -1,8 +1,11 @@
-"""Experiments: sweeps over a grid of settings, their cost plan, exact replay.
+"""Experiments: sweeps over a grid of settings, their cost plan, exact replay, starter configs.
 
 | module | one idea |
 |---|---|
 | `sweep` | expand the sweep block, run every run (skip finished, resume the rest), compare |
 | `plan` | what a sweep will cost before it runs (`sweep --dry-run`) |
+| `draft` | a starter bake-off config from one labelled data file (`tiltyard draft`) |
+| `draft_words` | label words for it: short, distinct in context, one token where possible |
+| `draft_yaml` | the starter config as commented YAML |
 | `replay` | re-run a finished run from its saved config and say whether it came out identical |
 """

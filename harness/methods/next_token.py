@@ -39,6 +39,7 @@ from harness.methods.rank_scoring import (
 from harness.methods.registry import Encoded, register_method
 from harness.methods.templates import (
     PromptBuilder,
+    chat_frame,
     check_text_fields,
     parse_template,
     resolve_label_words,
@@ -92,17 +93,22 @@ class NextTokenMethod:
         words = resolve_label_words(m.label_words, self.label_names)
         lead, trail = special_tokens_around(tok)
         self.max_length = clamp_max_length(backbone, cfg.train.max_length)
+        self.chat = None if self.seq2seq and m.chat != "always" else chat_frame(tok, m.chat, cfg.model.checkpoint)
+        if self.seq2seq and self.chat is not None:
+            raise SettingError("method.chat", "chat framing is for decoders; an encoder-decoder's prompt is its "
+                               "encoder input: use 'never'")
         if self.seq2seq:  # label words are a target sequence of their own, closed as the tokenizer closes one
             self.labels = tokenize_label_words(tok, words, self.label_names, context="", space=False, end_ids=trail)
             limit = self.max_length
         else:
-            space = wants_space(m.space_prefix, self.template.tail, tok)
+            context = self.chat.tail if self.chat else self.template.tail  # what the label words follow
+            space = wants_space(m.space_prefix, context, tok)
             end = (tok.eos_token_id,) if m.end_token and tok.eos_token_id is not None else ()
-            self.labels = tokenize_label_words(tok, words, self.label_names, context=self.template.tail,
+            self.labels = tokenize_label_words(tok, words, self.label_names, context=context,
                                                space=space, end_ids=end)
             limit, trail = self.max_length - self.labels.longest, ()  # a closing eos would end the prompt early
         self.builder = PromptBuilder(self.template, tok, limit=limit, lead=lead, trail=trail,
-                                     limit_key="train.max_length", fields=self.fields)
+                                     limit_key="train.max_length", fields=self.fields, chat=self.chat)
         self.seqs, self.owner = self.labels.variants(m.multi_word)
         self.lm = self._adapt(m)
         self.demos = ""
@@ -126,6 +132,7 @@ class NextTokenMethod:
         """What besides tokenizer, data and max_length changes `encode`'s output."""
         m = self.cfg.method
         return {"method": self.name, "template": m.template, "demos": self.demos, "family": self.family,
+                "chat": self.chat.wrap("") if self.chat else None,
                 "label_ids": [[list(ids) for ids in per_label] for per_label in self.labels.ids]}
 
     def encode(self, texts: Sequence[Any], labels: Sequence[int]) -> list[Encoded]:
@@ -233,7 +240,8 @@ class NextTokenMethod:
         return {
             "kind": self.name, "family": self.family, "template": m.template, "score": m.score,
             "multi_word": m.multi_word, "space_prefix": m.space_prefix, "space_added": self.labels.space,
-            "end_token": m.end_token, "label_words": self.labels.describe(self.label_names, self.tokenizer),
+            "end_token": m.end_token, "chat": self.chat is not None,
+            "label_words": self.labels.describe(self.label_names, self.tokenizer),
             "parameters": total, "trainable_parameters": sum(p.numel() for _, p in self.trainable_parameters()),
         }
 

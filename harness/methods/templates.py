@@ -29,16 +29,18 @@ alike (WordPiece, "▁"-marking SentencePiece) need no prefix and get none under
 from __future__ import annotations
 
 import string
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from harness.errors import HarnessError, SettingError
 
 __all__ = [
+    "ChatFrame",
     "LabelTokens",
     "PromptBuilder",
     "Template",
+    "chat_frame",
     "encode_in_context",
     "is_space_sensitive",
     "parse_template",
@@ -191,6 +193,43 @@ def special_tokens_around(tokenizer: Any) -> tuple[tuple[int, ...], tuple[int, .
     return (), ()
 
 
+_CHAT_SLOT = "\x00prompt\x00"  # stands for the prompt when the chat template is rendered once to find its tail
+
+
+@dataclass(frozen=True)
+class ChatFrame:
+    """The tokenizer's chat template around a prompt: one user message, then the assistant turn start.
+
+    `wrap` renders the chat template itself for every prompt (so the ids are exactly what
+    `apply_chat_template(..., add_generation_prompt=True)` gives); `tail` is what the template puts
+    after the user's text, which is what the label words follow.
+    """
+
+    wrap: Callable[[str], str]
+    tail: str
+
+
+def chat_frame(tokenizer: Any, mode: str, checkpoint: str) -> ChatFrame | None:
+    """The chat framing `method.chat` asks for, or None; `always` without a chat template is a SettingError."""
+    has = bool(getattr(tokenizer, "chat_template", None))
+    if mode == "never" or (mode == "auto" and not has):
+        return None
+    if not has:
+        raise SettingError("method.chat", f"'always', but the tokenizer of {checkpoint} has no chat template; "
+                           "use 'auto' or 'never', or a checkpoint that ships one")
+
+    def wrap(prompt: str) -> str:
+        text = tokenizer.apply_chat_template([{"role": "user", "content": prompt}], add_generation_prompt=True,
+                                             tokenize=False)
+        return str(text)
+
+    framed = wrap(_CHAT_SLOT)
+    if framed.count(_CHAT_SLOT) != 1:
+        raise SettingError("method.chat", f"the chat template of {checkpoint} does not place the user's message "
+                           "verbatim once; use 'never'")
+    return ChatFrame(wrap, framed.split(_CHAT_SLOT)[1])
+
+
 @dataclass(frozen=True)
 class LabelTokens:
     """Token ids of every word of every label: `words[k][j]` is word j of label k."""
@@ -257,18 +296,24 @@ class PromptBuilder:
     """Renders an example's prompt and truncates its *text* (never the template) to a token limit."""
 
     def __init__(self, template: Template, tokenizer: Any, *, limit: int, lead: tuple[int, ...],
-                 trail: tuple[int, ...], limit_key: str, fields: Sequence[str] = ("text",)) -> None:
+                 trail: tuple[int, ...], limit_key: str, fields: Sequence[str] = ("text",),
+                 chat: ChatFrame | None = None) -> None:
         self.template, self.tokenizer, self.fields = template, tokenizer, tuple(fields)
-        self.limit, self.lead, self.trail = limit, lead, trail
+        self.chat = chat
+        # a chat template writes its own special tokens (begin of text, turn markers)
+        self.limit, self.lead, self.trail = limit, (() if chat else lead), (() if chat else trail)
         empty = self.ids(dict.fromkeys(self.fields, ""), "")
         if len(empty) >= limit:
             raise HarnessError(
-                f"{template.key}: the template alone takes {len(empty)} tokens, leaving no room for text within "
+                f"{template.key}: the template alone{' (in the chat framing of method.chat)' if chat else ''} takes "
+                f"{len(empty)} tokens, leaving no room for text within "
                 f"the {limit} tokens {limit_key} allows (after the label words); shorten it or raise {limit_key}"
             )
 
     def ids(self, values: Mapping[str, str], demos: str) -> tuple[int, ...]:
         text = self.template.render({**values, "demos": demos})
+        if self.chat is not None:
+            text = self.chat.wrap(text)
         # verbose=False: a long text is measured here and cut below, so the library's "longer than the
         # maximum ... indexing errors" warning would not be true
         return self.lead + tuple(self.tokenizer.encode(text, add_special_tokens=False, verbose=False)) + self.trail

@@ -6,6 +6,7 @@ import warnings
 from typing import Any
 
 import torch
+from transformers.pytorch_utils import Conv1D
 
 from harness.config import LoraConfig
 from harness.errors import SettingError
@@ -20,7 +21,6 @@ def add_lora(model: Any, lora: LoraConfig, *, seed: int, task_type: str | None =
     A target list that names no module of the model is refused naming `method.lora.targets`.
     """
     import peft  # late: peft imports much of transformers
-    from transformers.pytorch_utils import Conv1D
 
     settings = peft.LoraConfig(
         r=lora.r, lora_alpha=lora.alpha, lora_dropout=lora.dropout,  # type: ignore[arg-type]  # a float works

@@ -23,7 +23,10 @@ from typing import Any
 
 import numpy as np
 import torch
+import transformers as tf
+from safetensors.torch import load_file, save_file
 from torch import nn
+from transformers import AutoModelForSequenceClassification
 
 from harness.errors import HarnessError
 from harness.files import atomic_folder
@@ -48,8 +51,6 @@ def _plain_backbone(method: Any) -> Any:
 
 def _library_model(method: Any, backbone: Any) -> Any | None:
     """The library's sequence classifier holding our weights, or None when it cannot express our model."""
-    from transformers import AutoModelForSequenceClassification
-
     model = method.model
     names = list(method.label_names)
     config: Any = copy.deepcopy(backbone.config)
@@ -112,8 +113,6 @@ def save_head_model(method: Any, folder: Path) -> str:
             if lib is not None:
                 lib.save_pretrained(tmp)
             else:
-                from safetensors.torch import save_file
-
                 backbone.save_pretrained(tmp)
                 state = {f"head.{k}": v for k, v in method.model.head.state_dict().items()}
                 state.update({f"pooling.{k}": v for k, v in method.model.pooling.state_dict().items()})
@@ -146,9 +145,6 @@ class ExportedHead:
 
 def load_head_model(folder: Path) -> ExportedHead:
     """Reload what `save_head_model` wrote (either format), ready for prediction."""
-    import transformers as tf
-    from safetensors.torch import load_file
-
     path = folder / INFO_FILE
     if not path.exists():
         raise HarnessError(f"{folder} holds no exported head model ({INFO_FILE} is missing)")

@@ -13,6 +13,7 @@ runs once per prompt and its outputs serve every label; (training is the ordinar
 
 from __future__ import annotations
 
+import inspect
 import math
 from collections.abc import Sequence
 from typing import Any
@@ -52,8 +53,6 @@ def _last_position_only(model: Any) -> dict[str, Any]:
     Why: the prompt pass needs one distribution per prompt, and the output layer over every position
     (vocabulary x hidden per token, a fifth of a small decoder's weights) is wasted work.
     """
-    import inspect
-
     try:
         takes = "logits_to_keep" in inspect.signature(model.forward).parameters
     except (TypeError, ValueError):  # a forward without a readable signature

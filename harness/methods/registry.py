@@ -11,6 +11,7 @@ Names of freshly initialised parameters start with "head." (they get train.head_
 
 from __future__ import annotations
 
+import importlib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -85,8 +86,6 @@ _BUILTIN = ("harness.methods.head", "harness.methods.next_token", "harness.metho
 
 def load_builtin_methods() -> dict[str, MethodFactory]:
     """Import the built-in method modules for their registration side effect; returns METHODS."""
-    import importlib
-
     # Kept out of module import so that importing this module stays light.
     for module in _BUILTIN:
         importlib.import_module(module)

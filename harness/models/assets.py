@@ -188,6 +188,8 @@ def _converted(asset: Asset, gguf: Path) -> Path:
 def _convert_gguf(asset: Asset, gguf: Path, digest: str, out: Path) -> None:
     """Dequantise the GGUF into a plain fp32 model and save it with its tokenizer as safetensors."""
     _offline()
+    # late: only a conversion needs torch and transformers; listing and locating assets (and load_task,
+    # which resolves asset:NAME data) stay light
     import torch
     import transformers
     from transformers import AutoModelForCausalLM, AutoTokenizer
@@ -232,7 +234,7 @@ def _convert_gguf(asset: Asset, gguf: Path, digest: str, out: Path) -> None:
 
 def _check_saved_tokenizer(original: Any, folder: Path, name: str) -> None:
     """The saved tokenizer must reload with the same special tokens, chat template and ids."""
-    from transformers import AutoTokenizer
+    from transformers import AutoTokenizer  # late: as in _convert_gguf
 
     saved = AutoTokenizer.from_pretrained(folder)
     probe = "<|im_start|>user\nIs 5 £ too much?<|im_end|>"

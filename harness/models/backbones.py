@@ -20,6 +20,9 @@ from pathlib import Path
 from typing import Any, Literal
 
 import torch
+import transformers as tf
+from transformers.models.auto import modeling_auto
+from transformers.models.auto.modeling_auto import MODEL_FOR_CAUSAL_LM_MAPPING_NAMES
 
 from harness.config import ModelConfig
 from harness.errors import SettingError
@@ -104,7 +107,6 @@ def detect_family(config: Any) -> Family:
         return "encoder"
     if re.search(r"(ForCausalLM|LMHeadModel)\b", architectures) or getattr(config, "is_decoder", False):
         return "decoder"
-    from transformers.models.auto.modeling_auto import MODEL_FOR_CAUSAL_LM_MAPPING_NAMES
 
     if model_type in MODEL_FOR_CAUSAL_LM_MAPPING_NAMES:
         return "decoder"
@@ -120,8 +122,6 @@ _TEXT_MAPPINGS = ("MODEL_FOR_MASKED_LM_MAPPING_NAMES", "MODEL_FOR_CAUSAL_LM_MAPP
 
 def _check_text_model(config: Any, where: str) -> None:
     """Refuse a checkpoint whose model type no text auto class of transformers knows (e.g. a vision model)."""
-    from transformers.models.auto import modeling_auto
-
     text_types: set[str] = set()
     for name in _TEXT_MAPPINGS:
         text_types.update(getattr(modeling_auto, name, {}))
@@ -134,8 +134,6 @@ def _check_text_model(config: Any, where: str) -> None:
 
 
 def _model_class(family: Family, for_lm: bool) -> Any:
-    import transformers as tf
-
     if family == "encoder":
         if for_lm:
             raise SettingError("model.checkpoint", "an encoder, but this method scores label words with a language-model "
@@ -149,8 +147,6 @@ def _model_class(family: Family, for_lm: bool) -> Any:
 
 def load_backbone(model_cfg: ModelConfig, *, for_lm: bool) -> Backbone:
     """Load `model_cfg.checkpoint` as a bare model (for_lm=False) or with its LM output layer (for_lm=True)."""
-    import transformers as tf
-
     offline = hub_offline()
     source, gguf = resolve_source(model_cfg.checkpoint)
     if isinstance(source, Path) and gguf is None:

@@ -14,6 +14,11 @@ import shutil
 from pathlib import Path
 from typing import Any
 
+import torch
+from safetensors.torch import load_file, save_file
+from torch import nn
+from transformers import AutoConfig
+
 from harness.errors import HarnessError
 from harness.files import atomic_folder
 
@@ -50,9 +55,6 @@ def _update_config(config: Any, n_layers: int) -> None:
 
 
 def _read_weights(src: Path) -> dict[str, Any]:
-    import torch
-    from safetensors.torch import load_file
-
     if (src / "model.safetensors").is_file():
         return load_file(src / "model.safetensors")
     index = src / "model.safetensors.index.json"
@@ -81,9 +83,6 @@ def cut_checkpoint(src: Path | str, n_layers: int, out: Path | str) -> Path:
     (An asset name is resolved to its folder first, by `harness.models.assets.resolve_checkpoint`.) An existing `out` holding the same cut is
     reused, an older cut made here is replaced, and any other non-empty `out` is an error.
     """
-    from safetensors.torch import save_file
-    from transformers import AutoConfig
-
     src_path = Path(src)
     if not (src_path / "config.json").is_file():
         raise HarnessError(f"{src_path}: not a checkpoint folder (no config.json)")
@@ -127,8 +126,6 @@ def cut_checkpoint(src: Path | str, n_layers: int, out: Path | str) -> Path:
 
 def _layer_stacks(model: Any) -> list[tuple[str, Any]]:
     """(dotted name, ModuleList) of each top-level layer stack, outermost first."""
-    from torch import nn
-
     stacks: list[tuple[str, Any]] = []
     for name, module in model.named_modules():
         if not isinstance(module, nn.ModuleList) or name.rsplit(".", 1)[-1] not in _STACK_NAMES:
@@ -141,8 +138,6 @@ def _layer_stacks(model: Any) -> list[tuple[str, Any]]:
 
 def cut_model_in_memory(model: Any, n_layers: int) -> Any:
     """Keep the first `n_layers` layers of a loaded PreTrainedModel, in place; returns the model."""
-    from torch import nn
-
     total = _layer_total(model.config, type(model).__name__)
     _check_n(n_layers, total, type(model).__name__)
     stacks = _layer_stacks(model)

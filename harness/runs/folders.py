@@ -111,7 +111,7 @@ def environment_info() -> dict[str, Any]:
     """Package versions, threads and platform: what `replay` compares."""
     from importlib import metadata
 
-    import torch
+    import torch  # late: run folders are read by compare and dry runs, which need no torch
 
     versions: dict[str, str | None] = {}
     for name in _PACKAGES:

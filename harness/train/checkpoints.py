@@ -23,7 +23,9 @@ from typing import Any
 
 import numpy as np
 import torch
+from safetensors.torch import load_file, save
 from torch import nn
+from torch.nn.parallel import DistributedDataParallel
 
 from harness.errors import HarnessError
 from harness.files import atomic_write_bytes
@@ -58,8 +60,6 @@ class TrainState:
 
 def _unwrapped(model: nn.Module) -> nn.Module:
     """The module inside a DDP wrapper (several processes), so names carry no 'module.' prefix."""
-    from torch.nn.parallel import DistributedDataParallel
-
     return model.module if isinstance(model, DistributedDataParallel) else model
 
 
@@ -138,8 +138,6 @@ class Checkpoints:
 
     def save_best(self, model: nn.Module) -> None:
         """Write best.safetensors atomically (the main process only)."""
-        from safetensors.torch import save
-
 
         if not is_main_process():
             return
@@ -147,8 +145,6 @@ class Checkpoints:
 
     def load_best(self, model: nn.Module) -> None:
         """Load best.safetensors into `model` (every process, once the main one has written it)."""
-        from safetensors.torch import load_file
-
 
         wait_for_everyone()
         if not self.best.exists():

@@ -11,6 +11,8 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+import psutil
+
 __all__ = ["current_rss_mb", "peak_rss_mb", "reset_peak_rss"]
 
 _STATUS = Path("/proc/self/status")
@@ -45,7 +47,7 @@ def peak_rss_mb() -> float:
     if peak is not None:
         return peak
     try:
-        import resource
+        import resource  # late: POSIX only
 
         value = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
         return value / (1024 * 1024) if sys.platform == "darwin" else value / 1024  # bytes on macOS, KiB elsewhere
@@ -55,6 +57,4 @@ def peak_rss_mb() -> float:
 
 def current_rss_mb() -> float:
     """Resident memory right now, in MiB."""
-    import psutil
-
     return float(psutil.Process().memory_info().rss) / (1024 * 1024)

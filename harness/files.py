@@ -131,14 +131,14 @@ class LockedFile:
     """An open lock file holding an exclusive OS lock (flock) until `release`, or until the process ends."""
 
     def __init__(self, path: Path, fd: int) -> None:
-        self.path, self._fd = path, fd
+        import fcntl
+
+        self.path, self._fd, self._fcntl = path, fd, fcntl  # kept: a release at interpreter exit cannot import
 
     def release(self) -> None:
         """Give the lock up and close the file (the file stays: others may be waiting on it)."""
-        import fcntl
-
         if self._fd >= 0:
-            fcntl.flock(self._fd, fcntl.LOCK_UN)
+            self._fcntl.flock(self._fd, self._fcntl.LOCK_UN)
             os.close(self._fd)
             self._fd = -1
 
@@ -163,9 +163,10 @@ def lock_file(path: Path, note: str) -> LockedFile | None:
     file renamed over it would be a different, unlocked one. Readers take a partial note as unknown.
     """
     import errno
-    import fcntl
 
     fd = _open_lock(path)
+    import fcntl
+
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError as exc:
@@ -180,9 +181,9 @@ def lock_file(path: Path, note: str) -> LockedFile | None:
 
 def wait_for_unlock(path: Path) -> None:
     """Block until no process holds the lock on `path` (Ctrl-C still stops the wait)."""
+    fd = _open_lock(path)
     import fcntl
 
-    fd = _open_lock(path)
     try:
         fcntl.flock(fd, fcntl.LOCK_SH)  # granted once the exclusive holder lets go
         fcntl.flock(fd, fcntl.LOCK_UN)

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import random
 import sys
 import time
@@ -52,12 +53,15 @@ def seed_everything(seed: int) -> None:
 
 
 def set_threads(threads: int | None) -> int:
-    """torch intra-op threads: train.threads, else the physical cores (hyper-threads slow matmuls down)."""
+    """torch intra-op threads: train.threads, else the physical cores this process may use (hyper-threads
+    slow matmuls down)."""
     import psutil
 
     from harness.train.processes import local_process_count
 
     cores = psutil.cpu_count(logical=False) or torch.get_num_threads()
+    if hasattr(os, "sched_getaffinity"):  # the share a scheduler gave this process (Slurm's cpuset, taskset)
+        cores = min(cores, len(os.sched_getaffinity(0)))
     n = threads or max(1, cores // local_process_count())  # processes launched together share the cores
     torch.set_num_threads(n)
     return n

@@ -101,6 +101,7 @@ def connect(spec: ClusterSpec) -> Iterator[str]:
         ray.init(num_cpus=cpus, include_dashboard=False, _temp_dir=scratch, **quiet)
         where = f"a local Ray instance with {cpus} CPUs (logs in {scratch} while it runs)"
     else:
+        _check_reachable(spec.address)
         try:
             ray.init(address=spec.address, **quiet)
         except (ConnectionError, RuntimeError, ValueError) as exc:
@@ -114,6 +115,22 @@ def connect(spec: ClusterSpec) -> Iterator[str]:
         ray.shutdown()
         if scratch is not None:
             shutil.rmtree(scratch, ignore_errors=True)
+
+
+def _check_reachable(address: str) -> None:
+    """HOST:PORT (or ray://HOST:PORT) must answer within 10 s: Ray itself retries an unreachable address for
+    minutes, printing as it goes. Other forms ('auto': the cluster started on this machine) go to Ray as given."""
+    import socket
+
+    host, sep, port = address.removeprefix("ray://").rpartition(":")
+    if not sep or not port.isdigit() or not host:
+        return
+    try:
+        with socket.create_connection((host.strip("[]"), int(port)), timeout=10):
+            pass
+    except OSError as exc:
+        raise HarnessError(f"--cluster {address}: nothing answers at {host}:{port} ({exc.strerror or exc}); check "
+                           "the address (RAY_ADDRESS, or 'ray status' on the cluster's head machine)") from None
 
 
 def _largest_machine(ray: Any) -> float:

@@ -66,8 +66,10 @@ def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_ru
     if workers is not None and where != "local":
         raise HarnessError(f"--workers applies to --cluster local only; the cluster at {where} has its own "
                            "machines (use --cpus-per-run to size each run)")
+    from harness.experiments.cluster import import_ray
     from harness.train.processes import is_launched
 
+    import_ray()  # missing: say so (naming the extra) before anything is read or written
     if is_launched():
         raise HarnessError("--cluster runs every run as one task of its own; start the sweep without "
                            "'accelerate launch'")

@@ -244,7 +244,8 @@ def _reason(exc: BaseException) -> str:
     cause = getattr(exc, "cause", None)
     if isinstance(cause, BaseException):
         text = str(cause).strip().splitlines()
-        return f"{type(cause).__name__}: {text[0] if text else ''} (is tiltyard installed on every machine?)"
+        hint = " (is tiltyard installed on every machine of the cluster?)" if isinstance(cause, ImportError) else ""
+        return f"{type(cause).__name__}: {text[0] if text else ''}{hint}"
     text = str(exc).strip().splitlines()
     return f"{type(exc).__name__}: {text[0] if text else ''}"
 

@@ -201,24 +201,26 @@ def test_the_driver_folder_serves_compare_and_replay_and_workers_wrote_only_to_t
     assert not list(cluster["worker_tmp"].glob(f"{SCRATCH_PREFIX}*"))  # and they cleaned up after themselves
 
 
-def _kill_first_trainer(worker_tmp: Path, killed: list[int], stop: threading.Event) -> None:
-    """Watch the workers' scratch folders; SIGKILL the first worker seen training (its log has a line)."""
-    while not stop.is_set() and not killed:
+def _kill_trainers(worker_tmp: Path, killed: list[tuple[int, str]], stop: threading.Event, times: int) -> None:
+    """Watch the workers' scratch folders; SIGKILL the worker training a run (its log has a line), `times`
+    times, each time the worker of the run killed first."""
+    earlier = set(worker_tmp.iterdir())  # what killed workers of earlier tests may have left
+    while not stop.is_set() and len(killed) < times:
         for log in worker_tmp.glob(f"{SCRATCH_PREFIX}*/runs/ferry/*/log.jsonl"):
-            pid = int(log.parts[len(worker_tmp.parts)][len(SCRATCH_PREFIX):].split("@")[0])
+            scratch = worker_tmp / log.parts[len(worker_tmp.parts)]
+            pid = int(scratch.name[len(SCRATCH_PREFIX):].split("@")[0])
+            if scratch in earlier or pid in {k[0] for k in killed} or (killed and log.parent.name != killed[0][1]):
+                continue  # a worker killed already (its scratch folder stays), or another run
             os.kill(pid, signal.SIGKILL)
-            killed.append(pid)
-            return
+            killed.append((pid, log.parent.name))
+            break
         time.sleep(0.005)
 
 
-def test_a_worker_killed_mid_run_is_replaced_and_the_run_redone(cluster: dict[str, Path], tmp_path: Path) -> None:
-    out = tmp_path / "out"
-    cfg = load_config(ferry_config(tmp_path, "grid.yaml", output=out, rows=160, checkpoint="toy:decoder",
-                                   train={"epochs": 6, "log_every": 2}, sweep={"grid": {"train.seed": [1, 2]}}))
-    killed: list[int] = []
+def _sweep_killing(cluster: dict[str, Path], cfg: Config, times: int) -> tuple[dict[str, Any], list[str], list[Any]]:
+    killed: list[tuple[int, str]] = []
     stop = threading.Event()
-    watcher = threading.Thread(target=_kill_first_trainer, args=(cluster["worker_tmp"], killed, stop), daemon=True)
+    watcher = threading.Thread(target=_kill_trainers, args=(cluster["worker_tmp"], killed, stop, times), daemon=True)
     watcher.start()
     said: list[str] = []
     try:
@@ -226,7 +228,19 @@ def test_a_worker_killed_mid_run_is_replaced_and_the_run_redone(cluster: dict[st
     finally:
         stop.set()
         watcher.join(timeout=10)
-    assert len(killed) == 1, said
+    assert len(killed) == times, said
+    return summary, said, killed
+
+
+def _long_grid(tmp_path: Path) -> Config:
+    return load_config(ferry_config(tmp_path, "grid.yaml", output=tmp_path / "out", rows=160, checkpoint="toy:decoder",
+                                    train={"epochs": 6, "log_every": 2}, sweep={"grid": {"train.seed": [1, 2]}}))
+
+
+def test_a_worker_killed_mid_run_is_replaced_and_the_run_redone(cluster: dict[str, Path], tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    cfg = _long_grid(tmp_path)
+    summary, said, killed = _sweep_killing(cluster, cfg, times=1)
     assert summary["failed"] == [], said
     lost = [line for line in said if "its worker was lost" in line]
     assert len(lost) == 1 and lost[0].endswith("; sending it once more"), said
@@ -237,7 +251,21 @@ def test_a_worker_killed_mid_run_is_replaced_and_the_run_redone(cluster: dict[st
         assert read_status(folder)["resumed"] is False  # redone from the start: the killed attempt left nothing here
     assert not [p for p in out.rglob("*") if p.name.endswith(".tmp")]  # nothing half-written in the output folder
     leftovers = list(cluster["worker_tmp"].glob(f"{SCRATCH_PREFIX}*"))
-    assert all(p.name.startswith(f"{SCRATCH_PREFIX}{killed[0]}@") for p in leftovers)  # only the dead one's, if any
+    assert all(p.name.startswith(f"{SCRATCH_PREFIX}{killed[0][0]}@") for p in leftovers)  # only the dead one's, if any
+
+
+def test_a_run_whose_worker_dies_twice_is_failed_with_the_reason(cluster: dict[str, Path], tmp_path: Path) -> None:
+    cfg = _long_grid(tmp_path)
+    summary, said, killed = _sweep_killing(cluster, cfg, times=2)
+    runs = expand_sweep(cfg)
+    doomed = [i for i, r in enumerate(runs) if run_id(r) == killed[0][1]]
+    assert summary["failed"] == doomed, said
+    status = read_status(run_folder(runs[doomed[0]]))
+    assert status["state"] == "failed"
+    assert status["error"].startswith("its worker was lost twice on the cluster: WorkerCrashedError: ")
+    assert sorted(p.name for p in run_folder(runs[doomed[0]]).iterdir()) == ["status.json"]  # nothing half-done
+    other = run_folder(runs[1 - doomed[0]])
+    assert read_status(other)["state"] == "finished"  # the sweep went on with the rest
 
 
 def test_failures_stay_with_their_runs(cluster: dict[str, Path], tmp_path: Path) -> None:

@@ -155,3 +155,23 @@ def test_run_ids_do_not_depend_on_the_output_folder(tmp_path: Path) -> None:
     cfg = _run_cfg(tmp_path)
     moved = dataclasses.replace(cfg, output=str(tmp_path / "elsewhere"))  # what a worker runs
     assert run_id(cfg) == run_id(moved)
+
+
+def test_auto_without_a_cluster_on_this_machine_is_one_line(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    pytest.importorskip("ray")
+    monkeypatch.setenv("RAY_TMPDIR", str(tmp_path))  # where Ray looks for the address of a cluster started here
+    monkeypatch.delenv("RAY_ADDRESS", raising=False)
+    with pytest.raises(HarnessError, match=r"^--cluster auto: cannot join the Ray cluster \(.+\); check the address"):
+        with connect(ClusterSpec("auto")):
+            pass
+
+
+def test_task_errors_and_lost_workers_are_one_line_reasons() -> None:
+    ray = pytest.importorskip("ray")
+    from harness.experiments.cluster import _reason
+
+    missing = ray.exceptions.RayTaskError("run_task", "Traceback ...", ModuleNotFoundError("No module named 'harness'"))
+    assert _reason(missing) == ("ModuleNotFoundError: No module named 'harness' (is tiltyard installed on every "
+                                "machine of the cluster?)")
+    assert _reason(ray.exceptions.RayTaskError("run_task", "...", ValueError("bad\nmore"))) == "ValueError: bad"
+    assert _reason(ray.exceptions.WorkerCrashedError()).startswith("WorkerCrashedError: ")

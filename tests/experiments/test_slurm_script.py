@@ -77,3 +77,21 @@ def test_the_slurm_script_runs_every_shard_then_the_comparison(tmp_path: Path) -
     assert json.loads((sweep_dir / "comparison.json").read_text())["runs"] == 3
     assert f"submitted 2 shards of {config} (job {array['job']};testcluster) and the comparison into {sweep_dir}" \
         in done.stdout
+
+
+def test_the_slurm_script_submits_nothing_for_a_config_without_a_sweep(tmp_path: Path) -> None:
+    bin_dir = tmp_path / "bin"
+    bin_dir.mkdir()
+    (bin_dir / "sbatch").write_text("#!/usr/bin/env bash\necho called >> \"$SBATCH_LOG\"\n")
+    (bin_dir / "tiltyard").write_text(f"#!/usr/bin/env bash\nexec {sys.executable} -m harness \"$@\"\n")
+    for tool in bin_dir.iterdir():
+        tool.chmod(0o755)
+    config = ferry_config(tmp_path, "single.yaml", rows=24)
+    env = {**os.environ, "PATH": f"{bin_dir}{os.pathsep}{os.environ['PATH']}", "SBATCH_LOG": str(tmp_path / "jobs"),
+           "PYTHONPATH": os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")]))}
+    done = subprocess.run(["bash", str(ROOT / "scripts" / "slurm_sweep.sh"), str(config)], cwd=tmp_path, env=env,
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 2
+    assert done.stderr.strip().splitlines() == [f"tiltyard sweep: error: {config} has no sweep.grid or sweep.arms; "
+                                                f"run a single config with 'tiltyard run {config}'"]
+    assert not (tmp_path / "jobs").exists()  # nothing was submitted

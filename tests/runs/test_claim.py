@@ -135,3 +135,18 @@ def test_a_sweep_skips_a_held_run_and_comes_back_to_it(tmp_path: Path) -> None:
               for phrase in ("skipped for now", "running", "coming back to it") if f": {phrase}" in line]
     assert events == [(first, "skipped for now"), (second, "running"), (first, "coming back to it"), (first, "running")]
     assert all(read_status(run_folder(r))["state"] == "finished" for r in runs)
+
+
+def test_under_a_launch_every_process_is_refused_when_the_main_one_is(tmp_path: Path,
+                                                                       monkeypatch: pytest.MonkeyPatch) -> None:
+    from harness.runs.claim import RunBusy, claim_launched
+    from harness.train import processes
+
+    # a non-main process of an `accelerate launch`: it does not claim, and learns from the main one (the
+    # all-reduce of processes.any_process) that the claim was refused
+    monkeypatch.setattr(processes, "is_main_process", lambda: False)
+    monkeypatch.setattr(processes, "any_process", lambda flag: True)
+    with pytest.raises(RunBusy, match=r"is claimed by another process \(the main process names it\)"):
+        with claim_launched(tmp_path / "run"):
+            pass
+    assert not claim_file(tmp_path / "run").exists()  # it never touched the lock

@@ -48,6 +48,17 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--dry-run", action="store_true", help="list the runs and an estimated cost, run nothing")
     p.add_argument("--shard", default=None, metavar="I/N", help="run only every N-th run starting at I (0-based)")
     p.add_argument("--no-compare", action="store_true", help="skip the comparison report at the end")
+    p.add_argument("--cluster", default=None, metavar="WHERE",
+                   help="run the runs as tasks on a Ray cluster: 'local' (start one on this machine), a cluster "
+                        "address (auto, HOST:PORT, ray://HOST:PORT), or 'none' (here, one after another); "
+                        "default: $RAY_ADDRESS when set, else none")
+    p.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="with --cluster local: runs at once (default: physical cores // --cpus-per-run)")
+    p.add_argument("--cpus-per-run", type=int, default=None, metavar="N",
+                   help="on a cluster: CPUs (and torch threads) of each run whose config leaves train.threads "
+                        "unset (default 1)")
+    p.add_argument("--fetch-weights", action="store_true",
+                   help="on a cluster: bring each run's model/ back too, not only its results")
 
     p = verbs.add_parser("compare", help="one comparison table over many run or sweep folders")
     p.add_argument("paths", nargs="+", type=Path, help="run folders, or folders that contain runs")

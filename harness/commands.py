@@ -19,8 +19,9 @@ from harness.names import PROGRAM
 from harness.report.cautions import SHORT_CAUTION
 
 __all__ = [
-    "agree_command", "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_draft", "cmd_predict", "cmd_replay", "cmd_run",
-    "cmd_sweep", "cmd_toy", "compare_command", "replay_command", "sweep_command",
+    "agree_command", "cluster_spec", "cmd_agree", "cmd_assets", "cmd_audit", "cmd_compare", "cmd_draft",
+    "cmd_predict", "cmd_replay", "cmd_run", "cmd_sweep", "cmd_toy", "compare_command", "replay_command",
+    "sweep_command",
 ]
 
 logger = logging.getLogger(__name__)
@@ -41,23 +42,62 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_sweep(args: argparse.Namespace) -> int:
     """`sweep CONFIG`: every combination of the sweep block, then the comparison."""
     return sweep_command(args.config, args.overrides, dry_run=args.dry_run, shard=args.shard,
-                         compare=not args.no_compare)
+                         compare=not args.no_compare, cluster=args.cluster, workers=args.workers,
+                         cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights)
+
+
+def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_run: int | None = None,
+                 fetch_weights: bool = False) -> Any:
+    """The ClusterSpec the sweep options ask for (None: run here), with $RAY_ADDRESS as the default address."""
+    import os
+
+    from harness.experiments.cluster import ClusterSpec
+
+    where = cluster if cluster is not None else (os.environ.get("RAY_ADDRESS") or None)
+    for option, value in (("--workers", workers), ("--cpus-per-run", cpus_per_run)):
+        if value is not None and value < 1:
+            raise HarnessError(f"{option} {value}: expected a whole number of at least 1")
+    if where is None or where.strip().lower() == "none":
+        given = [o for o, v in (("--workers", workers), ("--cpus-per-run", cpus_per_run),
+                                ("--fetch-weights", fetch_weights or None)) if v is not None]
+        if given:
+            raise HarnessError(f"{', '.join(given)} only apply to a cluster sweep: add --cluster local "
+                               "(or a cluster address)")
+        return None
+    where = where.strip()
+    if workers is not None and where != "local":
+        raise HarnessError(f"--workers applies to --cluster local only; the cluster at {where} has its own "
+                           "machines (use --cpus-per-run to size each run)")
+    from harness.experiments.cluster import import_ray
+    from harness.train.processes import is_launched
+
+    import_ray()  # missing: say so (naming the extra) before anything is read or written
+    if is_launched():
+        raise HarnessError("--cluster runs every run as one task of its own; start the sweep without "
+                           "'accelerate launch'")
+    return ClusterSpec(where, workers=workers, cpus_per_run=cpus_per_run, weights=fetch_weights)
 
 
 def sweep_command(
     config_path: Path, overrides: Sequence[str] = (), *, dry_run: bool = False, shard: str | None = None,
-    compare: bool = True,
+    compare: bool = True, cluster: str | None = None, workers: int | None = None, cpus_per_run: int | None = None,
+    fetch_weights: bool = False,
 ) -> int:
     """Exit 0 when every run (of the shard) finished, 1 when some failed.
 
     A data file that changed while the sweep ran is a HarnessError (exit 2) naming it, after the index
-    is written: the runs after the change were refused, and the sweep must be run again.
+    is written: the runs after the change were refused, and the sweep must be run again. `cluster` and
+    the options after it choose where the runs go (see `cluster_spec`).
     """
     from harness.config import load_config
     from harness.experiments.sweep import parse_shard, plan_sweep, run_sweep
     from harness.train.processes import is_main_process
 
     parts = parse_shard(shard)
+    spec = None if dry_run else cluster_spec(cluster, workers=workers, cpus_per_run=cpus_per_run,
+                                             fetch_weights=fetch_weights)
+    if spec is not None and cluster is None:
+        print(f"RAY_ADDRESS is set: the runs go to the Ray cluster at {spec.address} (--cluster none runs them here)")
     cfg = load_config(config_path, overrides)
     if not cfg.sweep.grid and not cfg.sweep.arms:
         raise HarnessError(f"{config_path} has no sweep.grid or sweep.arms; run a single config with "
@@ -67,7 +107,8 @@ def sweep_command(
         plan_sweep(cfg, name, parts, print)
         return 0
     # the other processes of a launch walk the sweep silently
-    summary = run_sweep(cfg, name, shard=parts, compare=compare, log=print if is_main_process() else _silent)
+    summary = run_sweep(cfg, name, shard=parts, compare=compare, log=print if is_main_process() else _silent,
+                        cluster=spec)
     if summary["data_changed"]:  # not a broken run but changed input: the user must re-run, as for a bad config
         raise HarnessError(f"{summary['data_changed']}; {len(summary['failed'])} runs were not run on one version "
                            f"of it (listed in {Path(summary['folder']) / 'sweep.json'}): run '{PROGRAM} sweep "

@@ -21,14 +21,17 @@ from typing import Any
 from harness.errors import HarnessError
 
 __all__ = [
+    "LockedFile",
     "atomic_folder",
     "cache_dir",
     "atomic_write_bytes",
     "atomic_write_json",
     "atomic_write_text",
     "file_sha256",
+    "lock_file",
     "read_json",
     "remove_stale_temporaries",
+    "wait_for_unlock",
 ]
 
 
@@ -130,3 +133,67 @@ def cache_dir() -> Path:
     ~/.cache/harness."""
     env = os.environ.get("HARNESS_CACHE", "").strip()
     return Path(env).expanduser() if env else Path.home() / ".cache" / "harness"
+
+
+class LockedFile:
+    """An open lock file holding an exclusive OS lock (flock) until `release`, or until the process ends."""
+
+    def __init__(self, path: Path, fd: int) -> None:
+        import fcntl
+
+        self.path, self._fd, self._fcntl = path, fd, fcntl  # kept: a release at interpreter exit cannot import
+
+    def release(self) -> None:
+        """Give the lock up and close the file (the file stays: others may be waiting on it)."""
+        if self._fd >= 0:
+            self._fcntl.flock(self._fd, self._fcntl.LOCK_UN)
+            os.close(self._fd)
+            self._fd = -1
+
+
+def _open_lock(path: Path) -> int:
+    try:
+        import fcntl  # noqa: F401  (POSIX only)
+    except ImportError:
+        raise HarnessError(f"cannot lock {path}: run locks need a POSIX system (Linux, macOS) with "
+                           "fcntl.flock") from None
+    path.parent.mkdir(parents=True, exist_ok=True)
+    # Not inherited by child processes (Python opens files close-on-exec), so a child never keeps the lock.
+    return os.open(path, os.O_RDWR | os.O_CREAT, 0o666 & ~_umask())
+
+
+def lock_file(path: Path, note: str) -> LockedFile | None:
+    """Take an exclusive lock on `path` (created if missing) without waiting; None when another holds it.
+
+    The OS drops the lock when the holding process dies, however it dies, so a lock is never stale.
+    On success `note` (who holds it) becomes the file's text. The note is written in place, not
+    through a renamed temporary like every other file: the lock belongs to this file's inode, and a
+    file renamed over it would be a different, unlocked one. Readers take a partial note as unknown.
+    """
+    import errno
+
+    fd = _open_lock(path)
+    import fcntl
+
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError as exc:
+        os.close(fd)
+        if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+            return None
+        raise HarnessError(f"cannot lock {path}: {exc.strerror} (a file system without locks?)") from None
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, note.encode("utf-8"), 0)
+    return LockedFile(path, fd)
+
+
+def wait_for_unlock(path: Path) -> None:
+    """Block until no process holds the lock on `path` (Ctrl-C still stops the wait)."""
+    fd = _open_lock(path)
+    import fcntl
+
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH)  # granted once the exclusive holder lets go
+        fcntl.flock(fd, fcntl.LOCK_UN)
+    finally:
+        os.close(fd)

@@ -6,7 +6,9 @@ and resumes interrupted ones, so a killed sweep costs only the run it was in. Da
 hashed when the sweep starts and checked before and after every run: a run that saw another
 version of a file fails with a message naming it, so one sweep never mixes two versions.
 sweep.json also records each run's peak memory and the memory left once it is over and collected,
-so growth from run to run (a leak) shows.
+so growth from run to run (a leak) shows. A run another process holds (harness.runs.claim) is
+skipped and come back to once the others are done. With a cluster (harness.experiments.cluster)
+the runs go to its workers instead of this process, under the same rules (harness.experiments.steps).
 """
 
 from __future__ import annotations
@@ -20,17 +22,25 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from harness.config import Config, config_folder, config_from_dict, config_to_dict, set_dotted
+from harness.config import Config, config_from_dict, config_to_dict, set_dotted
 from harness.config.dotted import thaw
-from harness.data.task import split_paths
 from harness.errors import HarnessError
+from harness.experiments.data_checks import changed_since, data_files, hash_data
 from harness.experiments.plan import estimate_runs, log_plan
-from harness.files import atomic_write_json, file_sha256, read_json
+from harness.experiments.steps import (
+    check_after_run,
+    decide_run,
+    failure_message,
+    mark_failed,
+    memory_after,
+    run_state,
+)
+from harness.files import atomic_write_json
 from harness.report.compare import compare_runs
 from harness.runs import run as runner
-from harness.runs.folders import read_status, run_folder, run_id, write_status
+from harness.runs.claim import RunBusy, claim_holder, claim_launched, wait_for_release
+from harness.runs.folders import run_folder, run_id
 from harness.train.checkpoints import Interrupted
-from harness.train.memory import current_rss_mb, peak_rss_mb
 from harness.train.processes import is_main_process
 
 __all__ = ["data_files", "estimate_runs", "expand_sweep", "parse_shard", "run_sweep", "plan_sweep", "sweep_folder"]
@@ -128,53 +138,8 @@ def sweep_folder(cfg: Config, name: str) -> Path:
     return Path(cfg.output).resolve() / cfg.task.name / "sweeps" / safe
 
 
-def data_files(cfg: Config) -> list[Path]:
-    """The split files a run reads, resolved as the runner resolves them (working folder, then config folder)."""
-    base = config_folder(cfg)
-    return [path.resolve() for path in split_paths(cfg.task, base).values()]
-
-
-def _hash_data(runs: Sequence[Config]) -> dict[str, str]:
-    hashes: dict[str, str] = {}
-    for cfg in runs:
-        for path in data_files(cfg):
-            if str(path) not in hashes:
-                if not path.is_file():
-                    raise HarnessError(f"data file {path} (task of run {run_id(cfg)}) does not exist")
-                hashes[str(path)] = file_sha256(path)
-    return hashes
-
-
-def _changed_now(cfg: Config, start: dict[str, str]) -> str | None:
-    """A message naming the first data file whose bytes differ from the sweep start, else None."""
-    for path in data_files(cfg):
-        now = file_sha256(path) if path.is_file() else "missing"
-        if now != start.get(str(path), now):
-            return (f"data file {path} changed since the sweep started (sha256 {start[str(path)][:12]} -> "
-                    f"{now[:12]}); not mixing two versions of it in one sweep: re-run the sweep")
-    return None
-
-
-def _changed_in_run(folder: Path, start: dict[str, str]) -> str | None:
-    """Same check against the hashes the runner recorded in data.json (what the run really read)."""
-    path = folder / "data.json"
-    if not path.exists():
-        return None
-    files = read_json(path).get("files", {})
-    for name, digest in files.items():
-        key = str(Path(name).resolve())
-        if key in start and start[key] != digest:
-            return (f"data file {key} differs from the sweep start (sha256 {start[key][:12]} at sweep start, "
-                    f"{digest[:12]} in this run's data.json); this run is not mixed into the sweep")
-    return None
-
-
-def _state(folder: Path) -> dict[str, Any]:
-    return read_status(folder) if (folder / "status.json").exists() else {"state": "new"}
-
-
 def _record(index: int, cfg: Config) -> dict[str, Any]:
-    status = _state(run_folder(cfg))
+    status = run_state(run_folder(cfg))
     return {"index": index, "id": run_id(cfg), "path": str(run_folder(cfg)), "state": status["state"],
             "checkpoint": cfg.model.checkpoint, "method": cfg.method.kind, "seed": cfg.train.seed,
             "train_size": cfg.task.train_size, **({"error": status["error"]} if status.get("error") else {})}
@@ -191,109 +156,120 @@ def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
     return records
 
 
-def _mark_failed(folder: Path, message: str) -> None:
-    if is_main_process():
-        write_status(folder, "failed", error=message)
-
-
 def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log, shown: set[str]) -> tuple[str, bool]:
-    """Run (or skip, or resume) one run of the sweep; return its final state and whether it ran."""
-    folder = run_folder(cfg)
-    state = _state(folder)["state"]
-    stale = _changed_in_run(folder, start) if state != "new" else None
-    if state == "finished" and stale is None:
-        log(f"{tag} done")
-        return "finished", False
-    changed = _changed_now(cfg, start)
-    if changed is not None:
-        _mark_failed(folder, changed)
-        log(f"{tag} failed: {changed}")
-        return "failed", False
-    if stale is not None:
-        log(f"{tag} an earlier attempt read other data ({stale}); starting it again")
-    resume = stale is None and (folder / "checkpoints" / "last.pt").is_file()  # what the runner resumes from
-    log(f"{tag} {'resuming from its last checkpoint' if resume else 'running'}")
+    """Run (or skip, or resume) one run of the sweep; return its final state ('busy': another process holds
+    it) and whether it ran."""
     try:
-        # looked up at call time (module attribute), so tests can stand in for execute_run
-        runner.execute_run(cfg, resume=resume, overwrite=state != "new" and not resume, log=log,
-                           shown_findings=shown)
+        with claim_launched(run_folder(cfg), doing="running it in a sweep"):
+            return _run_claimed(cfg, start, tag, log, shown)
+    except RunBusy as exc:
+        log(f"{tag} skipped for now: claimed by {exc.holder}; coming back to it at the end")
+        return "busy", False
+
+
+def _run_claimed(cfg: Config, start: dict[str, str], tag: str, log: Log, shown: set[str]) -> tuple[str, bool]:
+    folder = run_folder(cfg)
+    step = decide_run(cfg, start, tag, log)
+    if step in ("done", "refused"):
+        return ("finished" if step == "done" else "failed"), False
+    log(f"{tag} {'resuming from its last checkpoint' if step == 'resume' else 'running'}")
+    try:
+        # looked up at call time (a module attribute), so tests can stand in for execute_run
+        runner.execute_run(cfg, resume=step == "resume", overwrite=step == "rerun", log=log, shown_findings=shown)
     except Interrupted:
         raise  # Ctrl-C: the runner saved a checkpoint and marked the run; stop the whole sweep
     except Exception as exc:  # why: one broken run must not stop the rest; the error goes to status.json
-        message = str(exc) if isinstance(exc, HarnessError) else f"{type(exc).__name__}: {exc}"
-        if _state(folder)["state"] != "failed":
-            _mark_failed(folder, message)
+        message = failure_message(exc)
+        if run_state(folder)["state"] != "failed":
+            mark_failed(folder, message)
         log(f"{tag} failed: {(message.splitlines() or [type(exc).__name__])[0]}")
         return "failed", True
-    changed = _changed_in_run(folder, start)
-    if changed is not None:
-        _mark_failed(folder, changed)
-        log(f"{tag} failed: {changed}")
-        return "failed", True
-    return _state(folder)["state"], True
+    return check_after_run(folder, start, tag, log), True
+
+
+def _run_here(runs: Sequence[Config], picked: Sequence[int], start: dict[str, str], log: Log,
+              progress: Callable[[dict[int, str], dict[int, dict[str, float | None]]], None],
+              ) -> tuple[dict[int, str], dict[int, dict[str, float | None]]]:
+    """The runs one after another in this process; runs another process holds come last, once it lets go."""
+    states: dict[int, str] = {}
+    memory: dict[int, dict[str, float | None]] = {}
+    shown: set[str] = set()  # a data finding is the same for every run of the grid: say it once
+    order, busy = list(picked), []
+    tags = {i: f"[{n + 1}/{len(picked)}] #{i} {run_id(runs[i])}:" for n, i in enumerate(picked)}
+    while order:
+        i = order.pop(0)
+        states[i], ran = _run_one(runs[i], start, tags[i], log, shown)
+        if ran:
+            memory[i] = memory_after()
+        progress(states, memory)
+        if states[i] == "busy":
+            busy.append(i)
+        if not order and busy:  # come back to each held run, waiting for its holder to let go
+            i = busy.pop(0)
+            log(f"{tags[i]} coming back to it: waiting for {claim_holder(run_folder(runs[i]))} to let go")
+            wait_for_release(run_folder(runs[i]))
+            order.append(i)
+    return states, memory
 
 
 def run_sweep(
-    cfg: Config, name: str, *, shard: tuple[int, int] | None = None, compare: bool = True, log: Log = logger.info
+    cfg: Config, name: str, *, shard: tuple[int, int] | None = None, compare: bool = True, log: Log = logger.info,
+    cluster: Any = None,
 ) -> dict[str, Any]:
-    """Run every (shard's) run of the sweep; write sweep.json; compare the finished runs at the end."""
+    """Run every (shard's) run of the sweep; write sweep.json; compare the finished runs at the end.
+
+    `cluster` (a harness.experiments.cluster.ClusterSpec) sends the runs to a Ray cluster's workers;
+    None runs them here, one after another.
+    """
     runs, hits, reused = _expand(cfg)
     folder = sweep_folder(cfg, name)
     picked = [i for i in range(len(runs)) if shard is None or i % shard[1] == shard[0]]
-    start = _hash_data([runs[i] for i in picked])
+    start = hash_data([runs[i] for i in picked])
     meta = {"sweep": name, "config": cfg.source, "grid": list(cfg.sweep.grid), "runs_total": len(runs),
             "shard": None if shard is None else f"{shard[0]}/{shard[1]}", "data_files": start}
     _note_rules(cfg, hits, reused, log)
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
     states: dict[int, str] = {}
     memory: dict[int, dict[str, float | None]] = {}
-    shown: set[str] = set()  # a data finding is the same for every run of the grid: say it once
+
+    def progress(now_states: dict[int, str], now_memory: dict[int, dict[str, float | None]]) -> None:
+        states.update(now_states)
+        memory.update(now_memory)
+        _write_index(folder, meta, runs, memory)
+
     try:
-        for n, i in enumerate(picked):
-            tag = f"[{n + 1}/{len(picked)}] #{i} {run_id(runs[i])}:"
-            states[i], ran = _run_one(runs[i], start, tag, log, shown)
-            if ran:
-                memory[i] = _memory_after()
-            _write_index(folder, meta, runs, memory)
+        if cluster is None:
+            _run_here(runs, picked, start, log, progress)
+        else:
+            from harness.experiments.cluster import run_on_cluster
+
+            run_on_cluster(cluster, runs, picked, start, log, progress)
     finally:  # a kill mid-run still leaves an up-to-date index
         records = _write_index(folder, meta, runs, memory)
     failed = [i for i in picked if states.get(i) != "finished"]
     summary: dict[str, Any] = {"folder": str(folder), "runs": records, "picked": picked, "failed": failed,
-                               "data_changed": _changed_since(start)}
+                               "data_changed": changed_since(start)}
     log(f"sweep {name}: {len(picked) - len(failed)} finished, {len(failed)} failed; index in {folder / 'sweep.json'}")
-
-    if compare and is_main_process() and any(r["state"] == "finished" for r in records):
-        # every started run goes in: compare lists unfinished ones as left out instead of averaging them
-        started = [Path(r["path"]) for r in records if r["state"] != "new"]
-        try:
-            summary["comparison"] = compare_runs(started, folder)
-        except HarnessError as exc:  # the runs stand on their own; say why there is no table
-            log(f"comparison not written: {exc}")
-        else:
-            left = len(summary["comparison"]["incomplete"])
-            log(f"comparison of {len(started) - left} finished runs written to {folder / 'comparison.md'}"
-                + (f" ({left} left out, listed there)" if left else ""))
+    if compare:
+        _compare(folder, records, summary, log)
     return summary
 
 
-def _memory_after() -> dict[str, float | None]:
-    """Memory once a run is over and collected: what the next run starts from (growth here is a leak)."""
-    import gc
+def _compare(folder: Path, records: list[dict[str, Any]], summary: dict[str, Any], log: Log) -> None:
 
+    if not is_main_process() or not any(r["state"] == "finished" for r in records):
+        return
 
-    peak = peak_rss_mb()  # since the runner reset the window at the run's start: scoring and report included
-    gc.collect()  # the finished run's model, optimiser and batches are garbage now; return them before the next
-    return {"peak_rss_mb": round(peak, 1), "rss_mb_after": round(current_rss_mb(), 1)}
-
-
-def _changed_since(start: dict[str, str]) -> str | None:
-    """The first data file whose bytes now differ from the sweep start, as a message; None when none."""
-    for name, digest in start.items():
-        path = Path(name)
-        now = file_sha256(path) if path.is_file() else "missing"
-        if now != digest:
-            return f"data file {path} changed while the sweep ran (sha256 {digest[:12]} -> {now[:12]})"
-    return None
+    # every started run goes in: compare lists unfinished ones as left out instead of averaging them
+    started = [Path(r["path"]) for r in records if r["state"] != "new"]
+    try:
+        summary["comparison"] = compare_runs(started, folder)
+    except HarnessError as exc:  # the runs stand on their own; say why there is no table
+        log(f"comparison not written: {exc}")
+    else:
+        left = len(summary["comparison"]["incomplete"])
+        log(f"comparison of {len(started) - left} finished runs written to {folder / 'comparison.md'}"
+            + (f" ({left} left out, listed there)" if left else ""))
 
 
 def _note_rules(cfg: Config, hits: list[int], reused: int, log: Log) -> None:

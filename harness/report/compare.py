@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 
 from harness.errors import HarnessError
+from harness.files import read_json
 from harness.metrics import stats
 from harness.metrics.scores import HEADLINE, METRICS, check_metric_name
 from harness.report.compare_files import write_comparison
@@ -46,13 +47,31 @@ _IGNORED = ("sweep", "output", "task.name", "task.train_size", "train.seed", "tr
             "method.kind", "method.pooling", "method.template")
 
 
+def _swept(path: Path) -> list[Path]:
+    """The started runs a sweep folder's sweep.json lists (a sweep's runs live beside it, not below it)."""
+    index = read_json(path / "sweep.json")
+    listed = index.get("runs") if isinstance(index, dict) else None
+    if not isinstance(listed, list):
+        raise HarnessError(f"{path / 'sweep.json'} has no 'runs' list; the file is damaged")
+    folders = [Path(str(r.get("path"))) for r in listed if isinstance(r, dict)]
+    started = [f for f in folders if (f / "status.json").exists()]
+    if not started:
+        raise HarnessError(f"sweep folder {path}: none of the {len(folders)} runs its sweep.json lists has started "
+                           "(or their folders are not on this machine)")
+    return started
+
+
 def find_runs(paths: list[Path]) -> list[Path]:
-    """Run folders given directly or found below the given folders (any depth), without repeats."""
+    """Run folders given directly, listed by a sweep folder's sweep.json, or found below the given folders
+    (any depth), without repeats."""
     found: dict[Path, None] = {}
     for path in map(Path, paths):
         if not path.exists():
             raise HarnessError(f"{path} does not exist")
-        folders = [path] if (path / "status.json").exists() else sorted(s.parent for s in path.rglob("status.json"))
+        if (path / "sweep.json").exists() and not (path / "status.json").exists():
+            folders = _swept(path)
+        else:
+            folders = [path] if (path / "status.json").exists() else sorted(s.parent for s in path.rglob("status.json"))
         if not folders:
             raise HarnessError(f"{path} holds no runs (no status.json in it or below it)")
         for folder in folders:

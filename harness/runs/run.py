@@ -12,8 +12,8 @@ Everything a user can get wrong (the data files, the checkpoint, label words, te
 and checked before the run folder is touched: a bad input leaves an existing run folder exactly as
 it was (a new folder only records the error in status.json). A resumed run must see the same data
 as the interrupted one. Launched as several processes (see harness.train.processes), only the main
-process writes. (`harness.runs.predict` applies
-a finished run's model to new rows.)
+process writes. One process at a time: the run is claimed with an OS-level lock before the first
+write (harness.runs.claim). (`harness.runs.predict` applies a finished run's model to new rows.)
 """
 
 from __future__ import annotations
@@ -43,6 +43,7 @@ from harness.methods.registry import Encoded, Method, build_method
 from harness.metrics.scores import compute_metrics
 from harness.models.backbones import position_limit
 from harness.report.run_report import write_run_report
+from harness.runs.claim import claim_launched
 from harness.runs.folders import environment_info, read_status, run_folder, write_status
 from harness.train.checkpoints import Interrupted
 from harness.train.loop import set_threads, train
@@ -153,7 +154,8 @@ def _predictions(split: Split, probs: Any, label_names: Sequence[str], *, texts:
 
 def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, force: bool = False,
                 log: Callable[[str], Any] = logger.info, on_step: Callable[[int], None] | None = None,
-                shown_findings: set[str] | None = None, prepare: Callable[[Method], None] | None = None) -> Path:
+                shown_findings: set[str] | None = None, prepare: Callable[[Method], None] | None = None,
+                threads: int | None = None) -> Path:
     """Run `cfg` (one config, one seed) and return its folder; see the module docstring for the rules.
 
     `force` is `overwrite` under the command line's name (--force). `on_step(step)` runs after every
@@ -161,11 +163,22 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
     findings already logged (a sweep passes one set to all its runs, so each finding is shown once;
     every run's data.json and report still carry all of them); the run adds its own. `prepare(method)`
     runs once the method is built, before training (the benchmark's ablations set attributes through it).
+    `threads` is the torch thread count when the config leaves `train.threads` unset (a cluster task
+    passes the CPUs it was given). The run is claimed (harness.runs.claim) before anything is written
+    and held to the end: a run another process holds raises `RunBusy`.
     """
-    processes = process_state().num_processes  # joins launched processes before anything else
-    main = is_main_process()
-    overwrite = overwrite or force
+    process_state()  # joins launched processes before anything else
     folder = run_folder(cfg)
+    with claim_launched(folder):
+        return _execute_claimed(cfg, folder, resume=resume, overwrite=overwrite or force, log=log,
+                                on_step=on_step, shown_findings=shown_findings, threads=threads, prepare=prepare)
+
+
+def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool, log: Callable[[str], Any],
+                     on_step: Callable[[int], None] | None, shown_findings: set[str] | None,
+                     threads: int | None, prepare: Callable[[Method], None] | None) -> Path:
+    processes = process_state().num_processes
+    main = is_main_process()
     state = _folder_state(folder)
     if state == "finished" and not overwrite:
         if resume:
@@ -176,7 +189,7 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
     resume = resume and not overwrite and (folder / "checkpoints" / "last.pt").exists()
     reset_peak_rss()  # this run's own peak, not the largest of a sweep so far
     try:
-        threads = set_threads(cfg.train.threads)
+        threads = set_threads(cfg.train.threads or threads)
         data, method, audit, (train_items, dev_items, test_items) = _load_inputs(cfg, folder if resume else None)
         if prepare is not None:
             prepare(method)
@@ -204,7 +217,7 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
         result = None
         if method.trains:
             result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume,
-                           on_step=on_step)
+                           on_step=on_step, threads=threads)
         started = time.perf_counter()
         probs = predict_sharded(lambda items: method.predict_proba(items, cfg.eval.batch_size), test_items)
         eval_seconds = time.perf_counter() - started

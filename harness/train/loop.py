@@ -26,6 +26,7 @@ from harness.config import Config
 from harness.files import atomic_write_text
 from harness.methods.registry import Encoded, Method
 from harness.metrics.scores import METRICS, compute_metrics
+from harness.train import processes  # the module: looked up at call time (tests count the rows scored)
 from harness.train.batching import EpochBatches
 from harness.train.checkpoints import Checkpoints, Interrupted, TrainState, interrupt_guard
 from harness.train.processes import any_process, average_gradients, is_main_process, local_process_count
@@ -55,11 +56,14 @@ def seed_everything(seed: int) -> None:
 
 
 def set_threads(threads: int | None) -> int:
-    """torch intra-op threads: train.threads, else the physical cores (hyper-threads slow matmuls down)."""
+    """torch intra-op threads: train.threads, else the physical cores this process may use (hyper-threads
+    slow matmuls down)."""
     import psutil
 
 
     cores = psutil.cpu_count(logical=False) or torch.get_num_threads()
+    if hasattr(os, "sched_getaffinity"):  # the share a scheduler gave this process (Slurm's cpuset, taskset)
+        cores = min(cores, len(os.sched_getaffinity(0)))
     n = threads or max(1, cores // local_process_count())  # processes launched together share the cores
     torch.set_num_threads(n)
     return n
@@ -123,8 +127,13 @@ def make_scheduler(optimizer: torch.optim.Optimizer, cfg: Config, total_steps: i
 
 
 def evaluate(method: Method, items: Sequence[Encoded], label_names: Sequence[str], cfg: Config) -> dict[str, Any]:
-    """Dev metrics (no bootstrap), as compute_metrics gives them."""
-    probs = method.predict_proba(items, cfg.eval.batch_size)
+    """Dev metrics (no bootstrap), as compute_metrics gives them.
+
+    Launched as several processes, each scores its own shard of the rows and all get every row back
+    (harness.train.processes.predict_sharded), so the dev set is scored once in total and every
+    process computes the same metrics (and takes the same early-stopping decision).
+    """
+    probs = processes.predict_sharded(lambda rows: method.predict_proba(rows, cfg.eval.batch_size), items)
     return compute_metrics([it.label for it in items], probs, label_names, positive=cfg.eval.positive, bootstrap=0)
 
 
@@ -211,18 +220,20 @@ def update_best(state: TrainState, metrics: dict[str, Any], cfg: Config) -> bool
 def train(method: Method, train_items: Sequence[Encoded], dev_items: Sequence[Encoded],
           label_names: Sequence[str], cfg: Config, folder: Path, *, resume: bool = False,
           on_step: Callable[[int], None] | None = None,
-          optimizer_factory: Callable[[Method, Config], torch.optim.Optimizer] | None = None) -> TrainResult:
+          optimizer_factory: Callable[[Method, Config], torch.optim.Optimizer] | None = None,
+          threads: int | None = None) -> TrainResult:
     """Train `method.model` on train_items, evaluating on dev_items; leaves the best weights loaded.
 
     `folder` receives log.jsonl and checkpoints/. `on_step(step)` runs after every optimiser step
     (tests use it to interrupt). SIGINT saves a checkpoint and raises `Interrupted`.
     `optimizer_factory` replaces `make_optimizer` (the benchmark measures other optimisers through it).
+    `threads` is used when `train.threads` is unset (as in `set_threads`, the physical cores otherwise).
     """
     from tqdm import tqdm
 
     t = cfg.train
     seed_everything(t.seed)
-    set_threads(t.threads)
+    set_threads(t.threads or threads)
     if os.environ.get("HARNESS_HEAP") != "default":  # the benchmark's ablation keeps glibc's adaptive threshold
         release_large_blocks()
     accelerator = make_accelerator(cfg)

@@ -20,11 +20,11 @@ from typing import Any
 import numpy as np
 import torch
 
-__all__ = ["any_process", "average_gradients", "is_main_process", "local_process_count", "predict_sharded",
+__all__ = ["any_process", "average_gradients", "is_launched", "is_main_process", "local_process_count", "predict_sharded",
            "process_state", "wait_for_everyone"]
 
 
-def _launched() -> bool:
+def is_launched() -> bool:
     """True in a process started by a distributed launcher (torchrun, accelerate launch, MPI)."""
     names = ("WORLD_SIZE", "PMI_SIZE", "OMPI_COMM_WORLD_SIZE", "MV2_COMM_WORLD_SIZE")
     return any(int(os.environ.get(name, "1") or 1) > 1 for name in names)
@@ -44,7 +44,7 @@ def process_state() -> Any:
     # a state made here without it would take the GPU and the Accelerator would then refuse the CPU.
     wants_cpu = os.environ.get("ACCELERATE_USE_CPU", "").strip().lower() in ("1", "true", "yes")
     no_device = not (hasattr(torch, "accelerator") and torch.accelerator.is_available())
-    return PartialState(cpu=wants_cpu or (_launched() and no_device))
+    return PartialState(cpu=wants_cpu or (is_launched() and no_device))
 
 
 def is_main_process() -> bool:

@@ -279,3 +279,21 @@ def test_loss_type_primary_ranks_lowest_first_and_falls_back_to_mcnemar(tmp_path
     t = rows[1]["test"]
     assert t["p_bootstrap"] is None and t["delta"] is None  # no label-based bootstrap for a probability metric
     assert t["p_value"] == t["p_mcnemar"]
+
+
+def test_a_sweep_folder_stands_for_the_runs_its_index_lists(tmp_path: Path) -> None:
+    from harness.files import atomic_write_json
+
+    test = make_test_split(40)
+    listed = [write_run(tmp_path / "runs", test, seed=s) for s in (1, 2)]
+    write_run(tmp_path / "runs", test, seed=3)  # in the task folder, but not one of this sweep's runs
+    sweep = tmp_path / "runs" / "tickets" / "sweeps" / "grid"
+    never = tmp_path / "runs" / "tickets" / "not-started"
+    atomic_write_json(sweep / "sweep.json", {"runs": [{"path": str(p)} for p in [*listed, never]]})
+    assert find_runs([sweep]) == [p.resolve() for p in listed]
+    atomic_write_json(sweep / "sweep.json", {"runs": [{"path": str(never)}]})
+    with pytest.raises(HarnessError, match=r"sweep folder .*grid: none of the 1 runs its sweep.json lists has started"):
+        find_runs([sweep])
+    atomic_write_json(sweep / "sweep.json", ["not", "an", "index"])
+    with pytest.raises(HarnessError, match=r"sweep.json has no 'runs' list; the file is damaged"):
+        find_runs([sweep])

@@ -5,8 +5,9 @@ several CPU processes only through this (torchrun-based) launcher; `--cpu --num_
 alone starts one process unless given an MPI host file (its simple launcher). On a machine
 without a GPU the harness joins the processes on the CPU itself (harness.train.processes).
 
-Checked: every test row is predicted exactly once; the metrics agree with one process at the same
-effective batch size (one process with grad_accum 2 sees the same batches, two per step, as two
+Checked: every test row is predicted exactly once; every dev evaluation scores each dev row once in
+total (each process its own shard), with the same dev metrics as one process; the metrics agree with
+one process at the same effective batch size (one process with grad_accum 2 sees the same batches, two per step, as two
 processes each taking every other batch); only the main process writes the run folder.
 
 Tolerance and why not bit-identical in general: the mean of two processes' gradients and the
@@ -92,6 +93,20 @@ TRACER = textwrap.dedent("""
                 _note(_kind, made[1] if isinstance(made, tuple) else made)
                 return made
             setattr(tempfile, _name, _wrap_tmp)
+
+        # Count the rows each process scores: every call of the scorer inside predict_sharded (dev and test).
+        import harness.train.processes as _processes
+        _real_sharded = _processes.predict_sharded
+        _scored = os.path.join(os.environ["WRITE_TRACE"], f"scored-rank{_rank}.txt")
+
+        def _counted(predict, items):
+            def _counting(rows):
+                with _real_open(_scored, "a", encoding="utf-8") as fh:
+                    fh.write(f"{len(rows)}\\n")
+                return predict(rows)
+            return _real_sharded(_counting, items)
+
+        _processes.predict_sharded = _counted
 """)
 
 
@@ -118,7 +133,7 @@ def _outputs(folder: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
     return metrics, rows
 
 
-def test_two_processes_predict_every_row_once_and_agree_with_one(no_dropout_decoder: Path, tmp_path: Path) -> None:
+def test_two_processes_score_every_test_and_dev_row_once_and_agree_with_one(no_dropout_decoder: Path, tmp_path: Path) -> None:
     data = FERRY
     two = tmp_path / "two.yaml"
     two.write_text(CONFIG.format(data=data, checkpoint=no_dropout_decoder, accum=1, output=tmp_path / "runs"))
@@ -157,6 +172,24 @@ def test_two_processes_predict_every_row_once_and_agree_with_one(no_dropout_deco
     np.testing.assert_allclose(probs, ref_probs, rtol=0, atol=1e-5)
     assert [r["predicted"] for r in rows] == [r["predicted"] for r in ref_rows]
     assert len({r["predicted"] for r in rows}) > 1  # a model that learned something, not one constant answer
+
+    # dev: every evaluation scored each dev row once in total, half on each process, with one process's metrics
+    dev_rows = len(load_task(load_config(two).task).dev)
+    log = [json.loads(line) for line in (folder / "log.jsonl").read_text().splitlines()]
+    evaluations = sum("dev" in line for line in log)
+    calls = {rank: [int(n) for n in (trace / f"scored-rank{rank}.txt").read_text().split()] for rank in (0, 1)}
+    assert evaluations == 3 and len(calls[0]) == len(calls[1]) == evaluations + 1  # an evaluation per epoch, then test
+    for k in range(evaluations):
+        assert calls[0][k] + calls[1][k] == dev_rows and max(calls[0][k], calls[1][k]) <= (dev_rows + 1) // 2
+    assert calls[0][-1] + calls[1][-1] == len(test)
+    ref_log = [json.loads(line) for line in (reference / "log.jsonl").read_text().splitlines()]
+    for mine, theirs in zip([r for r in log if "dev" in r], [r for r in ref_log if "dev" in r], strict=True):
+        assert mine["step"] == theirs["step"] and mine["best_step"] == theirs["best_step"]
+        for name, value in theirs["dev"].items():
+            assert value == pytest.approx(mine["dev"][name], abs=1e-6), name
+    assert metrics["dev"]["best_step"] == ref_metrics["dev"]["best_step"]
+    for name, value in ref_metrics["dev"]["metrics"].items():
+        assert value == pytest.approx(metrics["dev"]["metrics"][name], abs=1e-6), name
 
     # only the main process (RANK 0) wrote into the output folder; the other touched nothing there
     out = str(tmp_path / "runs")

@@ -24,7 +24,7 @@ from pathlib import Path
 
 from harness.errors import HarnessError
 from harness.files import LockedFile, lock_file, wait_for_unlock
-from harness.train.processes import any_process, is_main_process
+from harness.train import processes  # the module: looked up at call time (tests stand in for a launch)
 
 __all__ = ["RunBusy", "claim_file", "claim_holder", "claim_launched", "claim_run", "wait_for_release"]
 
@@ -87,12 +87,12 @@ def claim_launched(folder: Path, *, doing: str = "running it") -> Iterator[None]
     refused, every process raises RunBusy, so none is left waiting for the others. One process: claim_run."""
     with contextlib.ExitStack() as held:
         busy: RunBusy | None = None
-        if is_main_process():
+        if processes.is_main_process():
             try:
                 held.enter_context(claim_run(folder, doing=doing))
             except RunBusy as exc:
                 busy = exc
-        if any_process(busy is not None):
+        if processes.any_process(busy is not None):
             raise busy or RunBusy(folder, "another process (the main process names it)")
         yield
 

@@ -188,10 +188,16 @@ def test_the_driver_folder_serves_compare_and_replay_and_workers_wrote_only_to_t
 
     # every file the cluster's processes wrote: the workers' temporary folders, the caches (ours and
     # matplotlib's, as any run writes), Ray's own folder, and the kernel's files (the peak-memory reset)
+    import getpass
+    import tempfile
+
     import matplotlib
 
+    # torch's own compile cache folder, which it may create on import: <tmp>/torchinductor_<user> by default
+    # (torch/_inductor/runtime/cache_dir_utils.py, default_cache_dir)
+    torch_cache = Path(tempfile.gettempdir()) / f"torchinductor_{getpass.getuser()}"
     allowed = [cluster["worker_tmp"], cluster["cache"], cluster["ray_tmp"], cluster["trace"],
-               Path(matplotlib.get_cachedir()), Path(matplotlib.get_configdir())]
+               Path(matplotlib.get_cachedir()), Path(matplotlib.get_configdir()), torch_cache]
     written = [Path(line) for log in cluster["trace"].glob("*.txt") for line in log.read_text().splitlines()]
     assert any(cluster["worker_tmp"] in p.parents for p in written), "the tracer saw no worker write"
     outside = [p for p in written if not any(p == a or a in p.parents for a in allowed)

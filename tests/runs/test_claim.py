@@ -112,7 +112,7 @@ def test_second_run_is_refused_while_the_first_holds_it_and_resume_proceeds_afte
 
 def test_a_sweep_skips_a_held_run_and_comes_back_to_it(tmp_path: Path) -> None:
     grid = write_config(tmp_path, tmp_path / "runs", rows=24, name="grid.yaml",
-                        extra="sweep:\n  grid:\n    train.seed: [1, 2]\n")
+                        sweep={"grid": {"train.seed": [1, 2]}})
     runs = expand_sweep(load_config(grid))
     held = run_folder(runs[0])
     said: list[str] = []

@@ -160,7 +160,6 @@ def test_killed_sweep_resumes_without_redoing_finished_runs(tmp_path: Path, caps
 
 # Writes that do not go through harness.files.atomic_write_*, each with the reason the file is still whole.
 _WHOLE_ANYWAY = {
-    "files.py": "the atomic writer itself (temporary name in the same folder, fsync, rename)",
     "models/assets.py": "into harness.files.atomic_folder's temporary folder, renamed into place as a whole",
     "models/cut.py": "into harness.files.atomic_folder's temporary folder, renamed into place as a whole",
     "methods/head_export.py": "into harness.files.atomic_folder's temporary folder, renamed into place as a whole",
@@ -168,6 +167,9 @@ _WHOLE_ANYWAY = {
     "models/toy.py": "build_toy writes the temporary folder ensure_toy renames whole; `tiltyard toy OUT_DIR` writes "
                      "straight into OUT_DIR, a folder of the user's, not a run",
     "train/memory.py": "a kernel control file (/proc/self/clear_refs), not data",
+    "experiments/cluster_task.py": "unpacks a run's archive into harness.files.atomic_folder's temporary folder, "
+                                   "renamed into place as a whole",
+    "files.py": "the atomic writer itself, and the run lock's note (written in place: the lock is the file's own)",
 }
 _WRITE = re.compile(r"""\.write_(text|bytes)\(|\bopen\([^)]*["'](w|a|x)b?\+?["']|os\.fdopen\([^)]*["']w"""
                     r"""|\.save_pretrained\(|\bsave_file\(|\btorch\.save\((?![^)]*\bbuffer\))|\.savefig\((?!buf\b)""")

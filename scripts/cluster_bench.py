@@ -52,6 +52,16 @@ def sweep_seconds(config: Path, out: Path, cache: Path, extra: list[str]) -> flo
     return seconds
 
 
+def _cpu_name() -> str:
+    """The CPU model (Linux: /proc/cpuinfo), else what the platform module says."""
+    cpuinfo = Path("/proc/cpuinfo")
+    if cpuinfo.is_file():
+        for line in cpuinfo.read_text(encoding="utf-8", errors="replace").splitlines():
+            if line.startswith("model name"):
+                return line.split(":", 1)[1].strip()
+    return platform.processor() or platform.machine()
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--config", type=Path, default=REPO / "configs" / "toy_sweep.yaml")
@@ -89,7 +99,7 @@ def main() -> int:
     results = {name: statistics.median(values) for name, values in timings.items()}
     report: dict[str, Any] = {
         "config": str(config.relative_to(REPO)) if REPO in config.parents else str(config), "runs": runs,
-        "date": time.strftime("%Y-%m-%d"), "machine": {"processor": platform.processor() or platform.machine(),
+        "date": time.strftime("%Y-%m-%d"), "machine": {"processor": _cpu_name(),
                                                        "logical_cpus": os.cpu_count(), "python": platform.python_version()},
         "repeats": args.repeats, "wall_seconds_median": results, "wall_seconds": timings,
         "load_average_before": loads,

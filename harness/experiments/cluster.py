@@ -98,7 +98,8 @@ def connect(spec: ClusterSpec) -> Iterator[str]:
         cpus = _local_cpus(spec)
         # a private folder for the instance's sockets and logs (not the shared /tmp/ray of other users)
         scratch = tempfile.mkdtemp(prefix="tiltyard-ray-", dir=os.environ.get("RAY_TMPDIR"))
-        ray.init(num_cpus=cpus, include_dashboard=False, _temp_dir=scratch, **quiet)
+        # address="local": a new instance even when RAY_ADDRESS names another one
+        ray.init(address="local", num_cpus=cpus, include_dashboard=False, _temp_dir=scratch, **quiet)
         where = f"a local Ray instance with {cpus} CPUs (logs in {scratch} while it runs)"
     else:
         _check_reachable(spec.address)

@@ -28,7 +28,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.config import Config
-from harness.files import atomic_folder, file_sha256
+from harness.files import atomic_folder, atomic_write_bytes, file_sha256
 
 __all__ = ["SCRATCH_PREFIX", "pack_folder", "run_task", "unpack_folder"]
 
@@ -62,9 +62,8 @@ def unpack_folder(archive: bytes, target: Path) -> None:
             source = tar.extractfile(member) if member.isfile() else None
             if source is None or relative.is_absolute() or ".." in relative.parts:  # plain files inside only
                 raise AssertionError(f"unexpected archive member {member.name!r}")  # internal: pack_folder made it
-            (tmp / relative).parent.mkdir(parents=True, exist_ok=True)
-            with source, open(tmp / relative, "wb") as out:  # inside the temporary folder, renamed whole below
-                shutil.copyfileobj(source, out)
+            with source:  # into the temporary folder, renamed whole when the block ends
+                atomic_write_bytes(tmp / relative, source.read())
 
 
 def _alive(pid: int) -> bool:

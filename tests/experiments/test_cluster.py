@@ -186,8 +186,9 @@ def test_the_driver_folder_serves_compare_and_replay_and_workers_wrote_only_to_t
     assert main(["replay", str(folder), "--out", str(tmp_path / "replayed")]) == 0  # identical, from these files
     assert "replay identical" in capsys.readouterr().out
 
-    # every file the cluster's processes wrote: the workers' temporary folders, the caches (ours and
-    # matplotlib's, as any run writes), Ray's own folder, and the kernel's files (the peak-memory reset)
+    # every file the cluster's processes wrote: the workers' temporary folders, the caches (ours, and the
+    # libraries' as any run writes them: matplotlib's, and torch's compiler cache once some code in this
+    # process has named it in the environment the workers inherit), Ray's own folder, and the kernel's files
     import getpass
     import tempfile
 
@@ -198,6 +199,7 @@ def test_the_driver_folder_serves_compare_and_replay_and_workers_wrote_only_to_t
     torch_cache = Path(tempfile.gettempdir()) / f"torchinductor_{getpass.getuser()}"
     allowed = [cluster["worker_tmp"], cluster["cache"], cluster["ray_tmp"], cluster["trace"],
                Path(matplotlib.get_cachedir()), Path(matplotlib.get_configdir()), torch_cache]
+    allowed += [Path(os.environ[name]) for name in ("TORCHINDUCTOR_CACHE_DIR", "TRITON_CACHE_DIR") if name in os.environ]
     written = [Path(line) for log in cluster["trace"].glob("*.txt") for line in log.read_text().splitlines()]
     assert any(cluster["worker_tmp"] in p.parents for p in written), "the tracer saw no worker write"
     outside = [p for p in written if not any(p == a or a in p.parents for a in allowed)

@@ -167,8 +167,6 @@ _WHOLE_ANYWAY = {
     "models/toy.py": "build_toy writes the temporary folder ensure_toy renames whole; `tiltyard toy OUT_DIR` writes "
                      "straight into OUT_DIR, a folder of the user's, not a run",
     "train/memory.py": "a kernel control file (/proc/self/clear_refs), not data",
-    "experiments/cluster_task.py": "unpacks a run's archive into harness.files.atomic_folder's temporary folder, "
-                                   "renamed into place as a whole",
     "files.py": "the atomic writer itself, and the run lock's note (written in place: the lock is the file's own)",
 }
 _WRITE = re.compile(r"""\.write_(text|bytes)\(|\bopen\([^)]*["'](w|a|x)b?\+?["']|os\.fdopen\([^)]*["']w"""

@@ -186,3 +186,22 @@ def test_bf16_autocast_trains_with_finite_losses(tmp_path):
     assert result.steps == 4 and len(losses) == 2 and all(math.isfinite(x) for x in losses)
     # Parameters stay fp32 (autocast only changes the compute dtype).
     assert all(p.dtype == torch.float32 for p in method.model.parameters())
+
+
+def test_default_threads_are_the_cores_this_process_may_use(monkeypatch: pytest.MonkeyPatch) -> None:
+    import os
+
+    import psutil
+
+    from harness.train.loop import set_threads
+
+    before = torch.get_num_threads()
+    try:
+        monkeypatch.setattr(psutil, "cpu_count", lambda logical=True: 8)
+        monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1, 2}, raising=False)  # a scheduler's cpuset
+        assert set_threads(None) == 3 and torch.get_num_threads() == 3
+        monkeypatch.setenv("LOCAL_WORLD_SIZE", "3")  # three launched processes share those cores
+        assert set_threads(None) == 1
+        assert set_threads(2) == 2  # train.threads wins
+    finally:
+        torch.set_num_threads(before)

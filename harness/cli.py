@@ -45,7 +45,10 @@ def _parser() -> argparse.ArgumentParser:
     p = verbs.add_parser("sweep", help="expand the config's sweep block and run every combination")
     p.add_argument("config", type=Path)
     _add_set(p)
-    p.add_argument("--dry-run", action="store_true", help="list the runs and an estimated cost, run nothing")
+    p.add_argument("--dry-run", action="store_true", help="list the runs and their forecast cost, run nothing")
+    p.add_argument("--budget", default=None, metavar="TIME",
+                   help="wall-time budget on this machine, e.g. 15m or 1h30m: a sweep forecast over it is trimmed "
+                        "(fewer trials, then fewer seeds) or refused (sweep.over_budget); default: sweep.budget")
     p.add_argument("--shard", default=None, metavar="I/N", help="run only every N-th run starting at I (0-based)")
     p.add_argument("--no-compare", action="store_true", help="skip the comparison report at the end")
     p.add_argument("--cluster", default=None, metavar="WHERE",

@@ -43,7 +43,7 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     """`sweep CONFIG`: every combination of the sweep block, then the comparison."""
     return sweep_command(args.config, args.overrides, dry_run=args.dry_run, shard=args.shard,
                          compare=not args.no_compare, cluster=args.cluster, workers=args.workers,
-                         cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights)
+                         cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights, budget=args.budget)
 
 
 def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_run: int | None = None,
@@ -81,7 +81,7 @@ def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_ru
 def sweep_command(
     config_path: Path, overrides: Sequence[str] = (), *, dry_run: bool = False, shard: str | None = None,
     compare: bool = True, cluster: str | None = None, workers: int | None = None, cpus_per_run: int | None = None,
-    fetch_weights: bool = False,
+    fetch_weights: bool = False, budget: str | None = None,
 ) -> int:
     """Exit 0 when every run (of the shard) finished, 1 when some failed.
 
@@ -104,11 +104,11 @@ def sweep_command(
                            f"'{PROGRAM} run {config_path}'")
     name = Path(config_path).stem
     if dry_run:
-        plan_sweep(cfg, name, parts, print)
+        plan_sweep(cfg, name, parts, print, budget=budget)
         return 0
     # the other processes of a launch walk the sweep silently
     summary = run_sweep(cfg, name, shard=parts, compare=compare, log=print if is_main_process() else _silent,
-                        cluster=spec)
+                        cluster=spec, budget=budget)
     if summary["data_changed"]:  # not a broken run but changed input: the user must re-run, as for a bad config
         raise HarnessError(f"{summary['data_changed']}; {len(summary['failed'])} runs were not run on one version "
                            f"of it (listed in {Path(summary['folder']) / 'sweep.json'}): run '{PROGRAM} sweep "

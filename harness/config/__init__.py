@@ -29,10 +29,11 @@ from harness.config.schema import (
     SweepConfig,
     TaskConfig,
     TrainConfig,
+    TuneConfig,
 )
 
 __all__ = [
-    "Config", "EvalConfig", "LoraConfig", "MethodConfig", "ModelConfig", "SweepConfig", "TaskConfig", "TrainConfig",
+    "Config", "EvalConfig", "LoraConfig", "MethodConfig", "ModelConfig", "SweepConfig", "TaskConfig", "TrainConfig", "TuneConfig",
     "config_folder", "config_from_dict", "config_to_dict", "dump_config", "field_docs", "get_dotted", "key_location",
     "load_config", "parse_override", "set_dotted",
 ]

@@ -16,6 +16,7 @@ from typing import Any, Literal, Union, get_args, get_origin
 from harness.config.checks import check_values
 from harness.config.dotted import check_key, get_dotted, set_dotted, thaw
 from harness.config.schema import Config
+from harness.config.tune_space import ARM_KEY, arm_space, check_space, parse_duration
 from harness.config.yaml_lines import collect_lines
 from harness.errors import HarnessError, UnknownKeyError
 
@@ -189,6 +190,8 @@ def _check_sweep(cfg: Config, where: Where) -> None:
     for i, arm in enumerate(cfg.sweep.arms):
         trial = base
         for key, value in arm.items():
+            if key == ARM_KEY:
+                continue  # the arm's own search space: checked with the tune block
             _check_settable(key, f"{where('sweep.arms')}: arm {i + 1}", "set by an arm")
             trial = set_dotted(trial, key, thaw(value), where("sweep.arms"))
         try:
@@ -198,6 +201,50 @@ def _check_sweep(cfg: Config, where: Where) -> None:
     for i, rule in enumerate(cfg.sweep.exclude):
         for key in rule:
             get_dotted(base, key, f"sweep.exclude[{i}] in {cfg.source}")
+    if cfg.sweep.budget is not None:
+        parse_duration(cfg.sweep.budget, where("sweep.budget") + ":")
+    _check_tune(cfg, base, where)
+
+
+def _check_tune(cfg: Config, base: dict[str, Any], where: Where) -> None:
+    """Every arm's search space: well formed, and each bound or value valid for the arm it tunes."""
+    tune = cfg.sweep.tune
+    arms = [dict(arm) for arm in cfg.sweep.arms] or [{}]
+    if tune is None:
+        for i, arm in enumerate(arms):
+            if ARM_KEY in arm:
+                raise HarnessError(f"{where('sweep.arms')}: arm {i + 1} has its own '{ARM_KEY}' space but the "
+                                   "sweep has no sweep.tune block (add one with `trials:`)")
+        return
+    if tune.trials < 1:
+        raise HarnessError(f"{where('sweep.tune.trials')}: must be at least 1, got {tune.trials}")
+    tuned = 0
+    for i, arm in enumerate(arms):
+        data = base
+        for key, value in arm.items():
+            if key != ARM_KEY:
+                data = set_dotted(data, key, thaw(value), where("sweep.arms"))
+        if str(get_dotted(data, "method.kind", "sweep.arms")) == "prompt":
+            continue  # nothing trains: nothing to tune
+        space = arm_space(thaw(tune.space), arm)
+        if space is None:
+            continue
+        tuned += 1
+        own = ARM_KEY in arm
+
+        def locate(key: str | None, own: bool = own, i: int = i) -> str:
+            if own:
+                return f"{where('sweep.arms')}: arm {i + 1} '{ARM_KEY}'" + (f" key '{key}'" if key else "")
+            return where("sweep.tune.space" + (f".{key}" if key else ""))
+
+        def build(key: str, value: Any, data: dict[str, Any] = data) -> None:
+            _check_settable(key, locate(key), "tuned")
+            config_from_dict(set_dotted(data, key, value, locate(key)), source=cfg.source, check_sweep=False)
+
+        check_space(space, locate, build)
+    if not tuned:
+        raise HarnessError(f"{where('sweep.tune')}: no arm trains anything to tune (prompt arms have no "
+                           "training settings); remove the block")
 
 
 def config_to_dict(cfg: Config) -> dict[str, Any]:

@@ -19,6 +19,7 @@ __all__ = [
     "SweepConfig",
     "TaskConfig",
     "TrainConfig",
+    "TuneConfig",
 ]
 
 
@@ -174,6 +175,23 @@ class EvalConfig:
     extra: tuple[str, ...] = _doc("local folders of extra metrics (evaluate library), loaded by path", ())
     store_texts: bool = _doc("copy test texts into predictions.jsonl and the report; false = ids and labels "
                              "only (personal data)", True)
+    score_on: Literal["test", "dev"] = _doc(
+        "split scored at the end of the run: test, or dev (tuning trials: the test split is never scored)", "test"
+    )
+
+
+@dataclass(frozen=True)
+
+
+class TuneConfig:
+    """Tuning trials before the seeds: the same number of seeded draws from a search space for every trained arm."""
+
+    trials: int = _doc("trials per trained arm (>= 1), each trained on train and scored on dev with one seed", 4)
+    space: dict[str, dict[str, Any]] = _doc(
+        "dotted key -> {low: A, high: B, scale: log | linear} or {values: [..]}; an arm's own `tune:` entry "
+        "replaces it (or `tune: false` leaves the arm untuned)", default_factory=dict)
+    seed: int | None = _doc("seed of the draws and of every trial's run; null = the first train.seed of the grid",
+                            None)
 
 
 @dataclass(frozen=True)
@@ -188,6 +206,11 @@ class SweepConfig:
         (),
     )
     exclude: tuple[dict[str, Any], ...] = _doc("combinations to skip: each a map of dotted key -> value", ())
+    tune: TuneConfig | None = _doc("tuning trials on dev before the grid's seeds run on test; null = none", None)
+    budget: str | None = _doc("wall-time budget of the whole sweep on this machine, e.g. 15m or 1h30m; null = none",
+                              None)
+    over_budget: Literal["trim", "refuse"] = _doc(
+        "a forecast over the budget: trim trials then seeds (see README), or refuse before running", "trim")
 
 
 @dataclass(frozen=True)

@@ -25,6 +25,7 @@ from typing import Any
 from harness.config import Config, config_from_dict, config_to_dict, set_dotted
 from harness.config.dotted import thaw
 from harness.errors import HarnessError
+from harness.experiments.budget import fit_budget
 from harness.experiments.data_checks import changed_since, data_files, hash_data
 from harness.experiments.plan import estimate_runs, log_plan
 from harness.experiments.steps import (
@@ -35,6 +36,7 @@ from harness.experiments.steps import (
     memory_after,
     run_state,
 )
+from harness.experiments.tune import Trial, arm_data, choose_settings, trial_runs
 from harness.files import atomic_write_json
 from harness.report.compare import compare_runs
 from harness.runs import run as runner
@@ -43,7 +45,7 @@ from harness.runs.folders import run_folder, run_id
 from harness.train.checkpoints import Interrupted
 from harness.train.processes import is_main_process
 
-__all__ = ["data_files", "estimate_runs", "expand_sweep", "parse_shard", "run_sweep", "plan_sweep", "sweep_folder"]
+__all__ = ["data_files", "estimate_runs", "expand_planned", "expand_sweep", "parse_shard", "run_sweep", "plan_sweep", "sweep_folder"]
 
 logger = logging.getLogger(__name__)
 
@@ -70,14 +72,16 @@ def _seed_free_key(run: Config) -> str | None:
     return json.dumps(data, sort_keys=True)
 
 
-def _expand(cfg: Config) -> tuple[list[Config], list[int], int]:
+def _expand(cfg: Config, chosen: dict[int, dict[str, Any]] | None = None,
+            held: Sequence[int] = (), arm_of: list[int] | None = None) -> tuple[list[Config], list[int], int]:
     """The runs, how many combinations each exclude rule removed, and how many seed-free runs were reused.
 
-    A zero-shot `prompt` run comes out the same for every train.seed: it runs once (with the first
-    seed the grid gives it) and stands for every seed, so no `exclude` rule is needed for it.
+    `chosen` gives tuned arms (by index in sweep.arms) the settings their trials chose; arms in `held`
+    (tuned arms whose choice is not made yet) give no runs; `arm_of`, when given, gets each run's arm
+    index. A zero-shot `prompt` run comes out the
+    same for every train.seed: it runs once (with the first seed the grid gives it) and stands for
+    every seed, so no `exclude` rule is needed for it.
     """
-    base = config_to_dict(cfg)
-    base["sweep"] = {"grid": {}, "arms": [], "exclude": []}
     keys = list(cfg.sweep.grid)  # file order: dicts keep insertion order
     rules = [{k: thaw(v) for k, v in rule.items()} for rule in cfg.sweep.exclude]
     hits = [0] * len(rules)
@@ -87,11 +91,12 @@ def _expand(cfg: Config) -> tuple[list[Config], list[int], int]:
     reused = 0
     arms = [dict(arm) for arm in cfg.sweep.arms] or [{}]
     # arms outermost (each arm's runs together), then the grid in file order
-    combos = [(arm, combo) for arm in arms for combo in itertools.product(*(cfg.sweep.grid[k] for k in keys))]
-    for n, (arm, combo) in enumerate(combos):
-        data = base
-        for key, value in arm.items():
-            data = set_dotted(data, key, thaw(value), f"sweep.arms in {cfg.source}")
+    combos = [(a, combo) for a in range(len(arms)) if a not in held
+              for combo in itertools.product(*(cfg.sweep.grid[k] for k in keys))]
+    for n, (a, combo) in enumerate(combos):
+        data = arm_data(cfg, arms[a])
+        for key, value in (chosen or {}).get(a, {}).items():
+            data = set_dotted(data, key, value, f"sweep.tune in {cfg.source}")
         for key, value in zip(keys, combo, strict=True):
             # a one-part key ('method') replaces the whole block; dotted keys set one field
             data = set_dotted(data, key, thaw(value), f"sweep.grid.{key} in {cfg.source}")
@@ -114,7 +119,20 @@ def _expand(cfg: Config) -> tuple[list[Config], list[int], int]:
                                f"{rid}; remove the repeated value from sweep.grid")
         seen[rid] = n
         runs.append(run)
+        if arm_of is not None:
+            arm_of.append(a)
     return runs, hits, reused
+
+
+def expand_planned(cfg: Config, trials: int | None = None) -> tuple[list[Trial], list[Config], list[int | None]]:
+    """What the sweep will run, as far as it is known before it runs: the trials (`trials` per tuned arm), the
+    runs of the grid, and for each run the tuned arm it stands in for (None: its settings are final). A tuned
+    arm whose trials have chosen gets its chosen settings; one still tuning is shown with the arm's own."""
+    trial_list = trial_runs(cfg, trials)
+    chosen, held, _ = choose_settings(cfg, trial_list) if trial_list else ({}, {}, {})
+    arm_of: list[int] = []
+    finals = _expand(cfg, chosen, arm_of=arm_of)[0]
+    return trial_list, finals, [a if a in held else None for a in arm_of]
 
 
 def expand_sweep(cfg: Config) -> list[Config]:
@@ -146,8 +164,9 @@ def _record(index: int, cfg: Config) -> dict[str, Any]:
 
 
 def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
-                 memory: dict[int, dict[str, float | None]] | None = None) -> list[dict[str, Any]]:
-    records = [_record(i, cfg) for i, cfg in enumerate(runs)]
+                 memory: dict[int, dict[str, float | None]] | None = None,
+                 roles: dict[int, dict[str, Any]] | None = None) -> list[dict[str, Any]]:
+    records = [{**_record(i, cfg), **(roles or {}).get(i, {"role": "run"})} for i, cfg in enumerate(runs)]
     for i, mem in (memory or {}).items():
         records[i]["memory"] = mem
     if is_main_process():  # under `accelerate launch` every process walks the sweep; one writes
@@ -212,50 +231,86 @@ def _run_here(runs: Sequence[Config], picked: Sequence[int], start: dict[str, st
     return states, memory
 
 
+def _pick(count: int, offset: int, shard: tuple[int, int] | None) -> list[int]:
+    return [offset + i for i in range(count) if shard is None or i % shard[1] == shard[0]]
+
+
 def run_sweep(
     cfg: Config, name: str, *, shard: tuple[int, int] | None = None, compare: bool = True, log: Log = logger.info,
-    cluster: Any = None,
+    cluster: Any = None, budget: str | None = None,
 ) -> dict[str, Any]:
     """Run every (shard's) run of the sweep; write sweep.json; compare the finished runs at the end.
 
-    `cluster` (a harness.experiments.cluster.ClusterSpec) sends the runs to a Ray cluster's workers;
-    None runs them here, one after another.
+    With a `sweep.tune` block the tuning trials run first (harness.experiments.tune), then every arm's
+    seeds with the settings its trials chose. `budget` (or sweep.budget) trims or refuses the sweep
+    by its forecast before anything runs (harness.experiments.budget). `cluster` (a
+    harness.experiments.cluster.ClusterSpec) sends the runs to a Ray cluster's workers; None runs
+    them here, one after another.
     """
-    runs, hits, reused = _expand(cfg)
+    fitted = fit_budget(cfg, budget, log)
+    cfg, trials = fitted.cfg, trial_runs(fitted.cfg, fitted.trials)
     folder = sweep_folder(cfg, name)
-    picked = [i for i in range(len(runs)) if shard is None or i % shard[1] == shard[0]]
-    start = hash_data([runs[i] for i in picked])
-    meta = {"sweep": name, "config": cfg.source, "grid": list(cfg.sweep.grid), "runs_total": len(runs),
-            "shard": None if shard is None else f"{shard[0]}/{shard[1]}", "data_files": start}
-    _note_rules(cfg, hits, reused, log)
-    log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
+    roles = {i: {"role": "trial", "arm": t.arm, "trial": t.index, "settings": t.settings} for i, t in enumerate(trials)}
+    runs: list[Config] = [t.cfg for t in trials]
     states: dict[int, str] = {}
     memory: dict[int, dict[str, float | None]] = {}
+    meta: dict[str, Any] = {"sweep": name, "config": cfg.source, "grid": list(cfg.sweep.grid),
+                            "shard": None if shard is None else f"{shard[0]}/{shard[1]}", "budget": fitted.note}
 
     def progress(now_states: dict[int, str], now_memory: dict[int, dict[str, float | None]]) -> None:
         states.update(now_states)
         memory.update(now_memory)
-        _write_index(folder, meta, runs, memory)
+        _write_index(folder, meta, runs, memory, roles)
 
-    try:
-        if cluster is None:
-            _run_here(runs, picked, start, log, progress)
-        else:
-            from harness.experiments.cluster import run_on_cluster
+    def phase(picked: list[int]) -> None:
+        try:
+            if cluster is None:
+                _run_here(runs, picked, start, log, progress)
+            else:
+                from harness.experiments.cluster import run_on_cluster
 
-            run_on_cluster(cluster, runs, picked, start, log, progress)
-    finally:  # a kill mid-run still leaves an up-to-date index
-        records = _write_index(folder, meta, runs, memory)
+                run_on_cluster(cluster, runs, picked, start, log, progress)
+        finally:  # a kill mid-run still leaves an up-to-date index
+            _write_index(folder, meta, runs, memory, roles)
+
+    start = hash_data(runs + _expand(cfg)[0])  # once, before anything runs: every run must see these versions
+    picked = _pick(len(trials), 0, shard)
+    tuning: dict[str, Any] | None = None
+    chosen: dict[int, dict[str, Any]] = {}
+    held: dict[int, str] = {}
+    if trials:
+        meta.update(runs_total=len(runs), data_files=start)
+        log(f"sweep {name}: {len(trials)} tuning trials first ({fitted.trials} per trained arm, scored on dev)"
+            + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
+        phase(picked)
+        chosen, held, tuning = choose_settings(cfg, trials)
+        if is_main_process():
+            atomic_write_json(folder / "tuning.json", tuning)
+        for a, why in held.items():
+            log(f"arm {a + 1}: {why}; its seeds wait (run the sweep again once its trials are done)")
+        for a, settings in chosen.items():
+            log(f"arm {a + 1}: chose {', '.join(f'{k}={v}' for k, v in settings.items())} on dev")
+    finals, hits, reused = _expand(cfg, chosen, list(held))
+    _note_rules(cfg, hits, reused, log)
+    offset = len(runs)
+    runs += finals
+    meta.update(runs_total=len(runs), data_files=start)
+    mine = _pick(len(finals), offset, shard)
+    log(f"sweep {name}: {len(finals)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(mine)}"))
+    phase(mine)
+    picked += mine
+    records = _write_index(folder, meta, runs, memory, roles)
     failed = [i for i in picked if states.get(i) != "finished"]
     summary: dict[str, Any] = {"folder": str(folder), "runs": records, "picked": picked, "failed": failed,
-                               "data_changed": changed_since(start)}
+                               "data_changed": changed_since(start), "tuning": tuning, "held": held}
     log(f"sweep {name}: {len(picked) - len(failed)} finished, {len(failed)} failed; index in {folder / 'sweep.json'}")
     if compare:
-        _compare(folder, records, summary, log)
+        _compare(folder, [r for r in records if r["role"] != "trial"], summary, log, tuning)
     return summary
 
 
-def _compare(folder: Path, records: list[dict[str, Any]], summary: dict[str, Any], log: Log) -> None:
+def _compare(folder: Path, records: list[dict[str, Any]], summary: dict[str, Any], log: Log,
+             tuning: dict[str, Any] | None) -> None:
 
     if not is_main_process() or not any(r["state"] == "finished" for r in records):
         return
@@ -263,7 +318,7 @@ def _compare(folder: Path, records: list[dict[str, Any]], summary: dict[str, Any
     # every started run goes in: compare lists unfinished ones as left out instead of averaging them
     started = [Path(r["path"]) for r in records if r["state"] != "new"]
     try:
-        summary["comparison"] = compare_runs(started, folder)
+        summary["comparison"] = compare_runs(started, folder, tuning=tuning)
     except HarnessError as exc:  # the runs stand on their own; say why there is no table
         log(f"comparison not written: {exc}")
     else:
@@ -281,12 +336,17 @@ def _note_rules(cfg: Config, hits: list[int], reused: int, log: Log) -> None:
             "not use; each such run is done once and stands for every seed")
 
 
-def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log) -> None:
-    """Log the runs a sweep (or one shard of it) would do, with their estimated cost; run nothing."""
-    runs, hits, reused = _expand(cfg)
-    _note_rules(cfg, hits, reused, log)
-    picked = [i for i in range(len(runs)) if shard is None or i % shard[1] == shard[0]]
-    plan = estimate_runs([runs[i] for i in picked])
-    log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {shard[0]}/{shard[1]}: {len(picked)}")
-        + f"; sweep folder {sweep_folder(cfg, name)}")
-    log_plan(picked, plan, log)
+def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, budget: str | None = None) -> None:
+    """Log the runs a sweep (or one shard of it) would do, tuning trials first, with their forecast cost; run
+    nothing. A budget is fitted first (harness.experiments.budget), so the plan is the one that would run."""
+    fitted = fit_budget(cfg, budget, log)
+    trials, finals, stand_in = expand_planned(fitted.cfg, fitted.trials)
+    _note_rules(fitted.cfg, *_expand(fitted.cfg)[1:], log)
+    runs = [t.cfg for t in trials] + finals
+    picked = _pick(len(trials), 0, shard) + _pick(len(finals), len(trials), shard)
+    log(f"sweep {name}: {len(trials)} tuning trials, then {len(finals)} runs"
+        + ("" if shard is None else f"; shard {shard[0]}/{shard[1]}: {len(picked)}")
+        + f"; sweep folder {sweep_folder(fitted.cfg, name)}")
+    if any(a is not None for a in stand_in):
+        log("runs of a tuned arm are shown with the arm's own settings until its trials have chosen")
+    log_plan(picked, estimate_runs([runs[i] for i in picked]), log)

@@ -53,12 +53,19 @@ def _swept(path: Path) -> list[Path]:
     listed = index.get("runs") if isinstance(index, dict) else None
     if not isinstance(listed, list):
         raise HarnessError(f"{path / 'sweep.json'} has no 'runs' list; the file is damaged")
-    folders = [Path(str(r.get("path"))) for r in listed if isinstance(r, dict)]
+    # tuning trials were scored on dev: the sweep's tuning tables show them, the comparison does not
+    folders = [Path(str(r.get("path"))) for r in listed if isinstance(r, dict) and r.get("role") != "trial"]
     started = [f for f in folders if (f / "status.json").exists()]
     if not started:
         raise HarnessError(f"sweep folder {path}: none of the {len(folders)} runs its sweep.json lists has started "
                            "(or their folders are not on this machine)")
     return started
+
+
+def _tuning_of(paths: list[Path]) -> dict[str, Any] | None:
+    """The tuning summary a (single) sweep folder among `paths` wrote, if any."""
+    found = [Path(p) / "tuning.json" for p in paths if (Path(p) / "tuning.json").is_file()]
+    return read_json(found[0]) if len(found) == 1 else None
 
 
 def find_runs(paths: list[Path]) -> list[Path]:
@@ -93,6 +100,9 @@ def _flat(data: dict[str, Any], prefix: str = "") -> dict[str, str]:
 def _run_record(raw: dict[str, Any]) -> dict[str, Any]:
     """The parts of a loaded run the comparison needs, with predictions as label indices in id order."""
     cfg, data = raw["config"], raw["data"]
+    if raw["metrics"].get("scored_on", "test") != "test":
+        raise HarnessError(f"{raw['path'].name} was scored on {raw['metrics']['scored_on']} (a tuning trial), not on "
+                           "test: it has no test predictions to compare")
     method = cfg.get("method", {})
     labels = list(data.get("labels") or raw["metrics"].get("labels") or [])
     index = {name: i for i, name in enumerate(labels)}
@@ -293,8 +303,12 @@ def _efficiency(rows: list[dict[str, Any]]) -> dict[str, Any] | None:
     return {"series": lines, "baselines": baselines}
 
 
-def compare_runs(paths: list[Path], out_dir: Path, *, primary: str | None = None) -> dict[str, Any]:
-    """Compare every run in `paths`; write comparison.{md,html,csv,json} and plots into `out_dir`."""
+def compare_runs(paths: list[Path], out_dir: Path, *, primary: str | None = None,
+                 tuning: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Compare every run in `paths`; write comparison.{md,html,csv,json} and plots into `out_dir`.
+
+    `tuning` (the sweep's tuning.json) adds the tuning tables and the expected-best plot; a sweep folder
+    among `paths` with a tuning.json brings its own when `tuning` is not given."""
     runs, incomplete = _load(find_runs(paths))
     if not runs:
         raise HarnessError(f"no finished runs among {len(incomplete)} run folders in {', '.join(map(str, paths))}")
@@ -312,7 +326,7 @@ def compare_runs(paths: list[Path], out_dir: Path, *, primary: str | None = None
         "primary": primary, "display": spec.display, "higher_is_better": spec.higher_is_better,
         "runs": len(runs), "test_rows": int(runs[0]["gold"].size), "test_sha256": runs[0]["test_sha"],
         "groups": rows, "incomplete": incomplete + skipped, "summary": _summary_line(rows, spec.display),
-        "efficiency": _efficiency(rows),
+        "efficiency": _efficiency(rows), "tuning": tuning if tuning is not None else _tuning_of(paths),
     }
     result["files"] = [str(p) for p in write_comparison(result, Path(out_dir))]
     return result

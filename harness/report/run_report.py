@@ -169,7 +169,7 @@ def build_run_report(run_dir: Path) -> dict[str, Any]:
         "reliability": m.get("reliability", []), "ece": m.get("metrics", {}).get("ece"),
         "curves": curves if trained else None,
         "cost": m.get("cost", {}), "worst": _worst(run, labels, int(_section(cfg, "eval").get("worst", 10))),
-        "weakest": weakest,
+        "weakest": weakest, "split": str(m.get("scored_on", "test")),
     }
 
 
@@ -178,14 +178,14 @@ def _caveats(report: dict[str, Any]) -> list[str]:
     weak = report["weakest"]
     if weak is not None:
         items.append(
-            f"The headline numbers average over {fmt(report['n'])} test rows. The weakest class here is "
+            f"The headline numbers average over {fmt(report['n'])} {report['split']} rows. The weakest class here is "
             f"'{weak['label']}' (precision {fmt(weak['precision'])}, recall {fmt(weak['recall'])}, "
             f"F1 {fmt(weak['f1'])}, {weak['support']} rows): read its row of the confusion matrix and the "
             "misclassified examples before trusting an average."
         )
     never = [c["label"] for c in report["per_class"] if c.get("predicted") == 0 and c["support"] > 0]
     if never:
-        items.append(f"The model never predicts {', '.join(repr(n) for n in never)}: every such test row is an error, "
+        items.append(f"The model never predicts {', '.join(repr(n) for n in never)}: every such {report['split']} row is an error, "
                      "whatever the average says.")
     items.append(
         "The test set records no groups of people, sources or dialects, so nothing here shows whether errors "
@@ -219,12 +219,12 @@ def report_blocks(report: dict[str, Any]) -> list[Block]:
     if report["notes"]:
         blocks.append(Bullets(tuple(f"note: {n}" for n in report["notes"])))
     blocks += [
-        Heading("Test scores"),
+        Heading("Test scores" if report["split"] == "test" else "Dev scores (a tuning trial: the test split was not scored)"),
         table(["metric", "value", "95% interval", "better"],
               [[h["display"] + (" (primary)" if h["primary"] else ""), h["value"],
                 "–" if h["lo"] is None else f"{fmt(h['lo'])} to {fmt(h['hi'])}",
                 "higher" if METRICS[h["metric"]].higher_is_better else "lower"] for h in report["headline"]],
-              caption=f"{fmt(report['n'])} test rows; intervals are percentile bootstrap over test rows"
+              caption=f"{fmt(report['n'])} {report['split']} rows; intervals are percentile bootstrap over {report['split']} rows"
                       + (f"; positive label for the binary metrics: '{report['positive']}'." if report["positive"] else ".")),
         Heading("Per class"),
         table(["label", "precision", "recall", "F1", "support", "predicted"],
@@ -265,14 +265,14 @@ def report_blocks(report: dict[str, Any]) -> list[Block]:
     if report["worst"] and any(w["text"] is not None for w in report["worst"]):
         blocks.append(table(["id", "text", "gold", "predicted", "p(gold)"],
                             [[w["id"], w["text"], w["gold"], w["predicted"], w["p_gold"]] for w in report["worst"]],
-                            caption="Misclassified test rows with the lowest probability on the gold label."))
+                            caption=f"Misclassified {report['split']} rows with the lowest probability on the gold label."))
     elif report["worst"]:  # eval.store_texts: false
         blocks.append(table(["id", "gold", "predicted", "p(gold)"],
                             [[w["id"], w["gold"], w["predicted"], w["p_gold"]] for w in report["worst"]],
-                            caption="Misclassified test rows with the lowest probability on the gold label; "
+                            caption=f"Misclassified {report['split']} rows with the lowest probability on the gold label; "
                                     "texts are not stored (eval.store_texts: false), look them up by id."))
     else:
-        blocks.append(Para("No test row was misclassified."))
+        blocks.append(Para(f"No {report['split']} row was misclassified."))
     blocks += [Heading("Before you rely on this"), Bullets(tuple(_caveats(report)))]
     return blocks
 

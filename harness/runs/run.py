@@ -126,7 +126,9 @@ def _load_inputs(cfg: Config, resume_from: Path | None) -> tuple[TaskData, Metho
         audit = audit_data(data, max_length=cfg.train.max_length,
                            count_tokens=token_counter(tokenizer) if tokenizer is not None else None,
                            positions=position_limit(backbone) if backbone is not None else None)
-        encoded = [encode_split(method, s, cfg)[0] for s in data.splits()]
+        # a tuning trial (eval.score_on: dev) never encodes, let alone scores, the test split
+        encoded = [encode_split(method, s, cfg)[0] if s.name != "test" or cfg.eval.score_on == "test" else []
+                   for s in data.splits()]
     except HarnessError as exc:
         raise _in_config(cfg, exc) from None
     return data, method, audit, encoded
@@ -218,17 +220,19 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
         if method.trains:
             result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume,
                            on_step=on_step, threads=threads)
+        scored, items = (data.dev, dev_items) if cfg.eval.score_on == "dev" else (data.test, test_items)
         started = time.perf_counter()
-        probs = predict_sharded(lambda items: method.predict_proba(items, cfg.eval.batch_size), test_items)
+        probs = predict_sharded(lambda items: method.predict_proba(items, cfg.eval.batch_size), items)
         eval_seconds = time.perf_counter() - started
         if main:
-            metrics = compute_metrics(list(data.test.labels), probs, data.label_names, positive=cfg.eval.positive,
+            metrics = compute_metrics(list(scored.labels), probs, data.label_names, positive=cfg.eval.positive,
                                       bootstrap=cfg.eval.bootstrap, ci=cfg.eval.ci, seed=cfg.train.seed)
+            metrics["scored_on"] = cfg.eval.score_on
             metrics["cost"] = {**_cost(method, result, eval_seconds), "processes": processes}
             if result is not None:
                 metrics["dev"] = {"best_step": result.best_step, cfg.eval.primary: result.best_value,
                                   "metrics": result.best_metrics, "stopped_early": result.stopped_early}
-            atomic_write_text(folder / "predictions.jsonl", _predictions(data.test, probs, data.label_names,
+            atomic_write_text(folder / "predictions.jsonl", _predictions(scored, probs, data.label_names,
                                                                          texts=cfg.eval.store_texts))
             atomic_write_json(folder / "metrics.json", metrics)
             _save_model(method, folder / "model")
@@ -276,6 +280,7 @@ def _summary(log: Callable[[str], Any], folder: Path, cfg: Config, metrics: dict
     ci = f" [{interval[0]:.3f}, {interval[1]:.3f}]" if interval and None not in interval else ""
     value = f"{primary:.4f}" if isinstance(primary, float) else str(primary)
     cost = metrics["cost"]
-    log(f"{cfg.method.kind} on {cfg.task.name}: test {cfg.eval.primary} {value}{ci} over {len(data.test)} rows; "
+    rows = len(data.dev if cfg.eval.score_on == "dev" else data.test)
+    log(f"{cfg.method.kind} on {cfg.task.name}: {cfg.eval.score_on} {cfg.eval.primary} {value}{ci} over {rows} rows; "
         f"{cost['steps']} steps, {cost['train_seconds']:.1f}s training")
     log(f"run folder: {folder}")

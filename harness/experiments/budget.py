@@ -1,0 +1,111 @@
+"""A wall-time budget for a sweep (`--budget 15m`, `sweep.budget`): fit the sweep to it before anything runs.
+
+The forecast (harness.experiments.forecast) gives every run's seconds on this machine; finished runs
+cost nothing more. A tuned arm's seeds are forecast at its most expensive trial's cost (the trials
+have not chosen yet). When the whole forecast is over the budget, the rule is, in this order:
+1. fewer tuning trials, the same number for every tuned arm (the last trials go first: the earlier
+   draws stay as they were), down to 2 per arm;
+2. then fewer seeds (the last values of the grid's `train.seed` list go first), down to 2;
+3. if it still does not fit, refuse, saying what the smallest sweep would take.
+With `sweep.over_budget: refuse` the sweep is refused at the first step instead, naming the key.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+from harness.config import Config, key_location
+from harness.config.tune_space import parse_duration
+from harness.errors import HarnessError
+
+__all__ = ["Fitted", "fit_budget", "sweep_cost"]
+
+Log = Callable[[str], None]
+Forecaster = Callable[[Sequence[Config]], list[float]]
+_FLOOR = 2
+
+
+@dataclass(frozen=True)
+class Fitted:
+    """The sweep to run: its config (the seed list maybe shortened), trials per tuned arm, and what was done."""
+
+    cfg: Config
+    trials: int | None
+    note: str | None
+
+
+def _minutes(seconds: float) -> str:
+    return f"{seconds / 60:.1f} min"
+
+
+def _with_seeds(cfg: Config, count: int) -> Config:
+    grid = dict(cfg.sweep.grid)
+    grid["train.seed"] = tuple(grid["train.seed"])[:count]
+    return dataclasses.replace(cfg, sweep=dataclasses.replace(cfg.sweep, grid=grid))
+
+
+def _remaining(forecaster: Forecaster, runs: Sequence[Config]) -> list[float]:
+    return forecaster(runs) if runs else []
+
+
+def sweep_cost(cfg: Config, trials: int | None, forecaster: Forecaster) -> float:
+    """Forecast seconds still to spend on the sweep with `trials` per tuned arm (None: all of them)."""
+    from harness.experiments.sweep import expand_planned  # late: sweep imports this module
+
+    trial_list, finals, stand_in = expand_planned(cfg, trials)
+    trial_cost = _remaining(forecaster, [t.cfg for t in trial_list])
+    final_cost = _remaining(forecaster, finals)
+    by_arm: dict[int, float] = {}
+    for trial, seconds in zip(trial_list, trial_cost, strict=True):
+        by_arm[trial.arm] = max(by_arm.get(trial.arm, 0.0), seconds)
+    # a tuned arm's seeds: at the dearest of its trials (what it will choose is not known yet)
+    total = sum(trial_cost)
+    for run_arm, seconds in zip(stand_in, final_cost, strict=True):
+        total += by_arm.get(run_arm, seconds) if run_arm is not None and seconds > 0 else seconds
+    return total
+
+
+def fit_budget(cfg: Config, budget: str | None, log: Log, forecaster: Forecaster | None = None) -> Fitted:
+    """The sweep that fits `budget` (or sweep.budget) by the module's rule; a refusal is a HarnessError."""
+    tune = cfg.sweep.tune
+    text = budget if budget is not None else cfg.sweep.budget
+    if text is None:
+        return Fitted(cfg, tune.trials if tune else None, None)
+    limit = parse_duration(text, "--budget" if budget is not None else key_location(cfg, "sweep.budget") + ":")
+    if forecaster is None:
+        from harness.experiments.forecast import forecast_runs  # late: forecasting loads models, only when asked
+
+        def forecaster(runs: Sequence[Config]) -> list[float]:
+            return [f.total_seconds for f in forecast_runs(runs, log=log)]
+
+    trials = tune.trials if tune else None
+    seeds = len(cfg.sweep.grid.get("train.seed", ()))
+    cost = sweep_cost(cfg, trials, forecaster)
+    first = f"forecast {_minutes(cost)} for the sweep as written"
+    if cost <= limit:
+        log(f"budget {_minutes(limit)}: {first}; it fits")
+        return Fitted(cfg, trials, f"fits: {first}")
+    if cfg.sweep.over_budget == "refuse":
+        key = "sweep.tune.trials" if tune else "sweep.budget"
+        raise HarnessError(f"{key_location(cfg, key)}: {first}, over the budget of {_minutes(limit)} "
+                           f"({'--budget' if budget is not None else 'sweep.budget'}); lower it, or set "
+                           "sweep.over_budget: trim to let the sweep cut trials, then seeds")
+    steps: list[str] = []
+    while cost > limit and trials is not None and trials > _FLOOR:
+        trials -= 1
+        cost = sweep_cost(cfg, trials, forecaster)
+        steps.append(f"{trials} trials per arm: {_minutes(cost)}")
+    while cost > limit and seeds > _FLOOR:
+        seeds -= 1
+        cfg = _with_seeds(cfg, seeds)
+        cost = sweep_cost(cfg, trials, forecaster)
+        steps.append(f"{seeds} seeds: {_minutes(cost)}")
+    if cost > limit:
+        raise HarnessError(f"{'--budget' if budget is not None else key_location(cfg, 'sweep.budget')} {text}: "
+                           f"{first}; even trimmed to {trials or 0} trials per arm and {seeds} seeds it needs "
+                           f"{_minutes(cost)}; give a budget of at least {_minutes(cost * 1.05)} or a smaller sweep")
+    note = f"trimmed to fit {_minutes(limit)}: {first}; " + "; ".join(steps)
+    log(f"budget {_minutes(limit)}: {note}")
+    return Fitted(cfg, trials, note)

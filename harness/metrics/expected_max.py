@@ -46,7 +46,7 @@ def _checked_n(n: int) -> int:
 
 
 def _max_distribution(values: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Distinct values u_j and P(max of n draws = u_j), the step F(u_j)^n - F(u_{j-1})^n of the empirical CDF."""
+    """Distinct values u_j and P(max of n draws = u_j) = F(u_j)^n - F(u_{j-1})^n, F the empirical CDF."""
     distinct, counts = np.unique(values, return_counts=True)  # sorted ascending
     total = len(values) ** n
     below = 0

@@ -5,6 +5,7 @@
 | `run_report` | one run's report (report.md / report.html) |
 | `compare` | many runs -> one table: groups, mean ± sd, intervals, paired tests, cost |
 | `compare_files` | the comparison's files and terminal text |
+| `tuning` | a sweep's tuning summary -> chosen settings, expected best dev score by number of trials, every trial |
 | `plots` | the figures |
 | `render` | one document model rendered as Markdown or HTML |
 | `cautions` | the cautions printed wherever a verdict is read (reports, comparisons, sweep, compare, predict) |

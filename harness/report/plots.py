@@ -15,13 +15,14 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
-from matplotlib.ticker import FuncFormatter, NullFormatter
+from matplotlib.ticker import FuncFormatter, MaxNLocator, NullFormatter
 
 __all__ = [
     "confusion_png",
     "cost_quality_png",
     "curves_png",
     "efficiency_png",
+    "expected_best_png",
     "groups_png",
     "human",
     "reliability_png",
@@ -236,6 +237,33 @@ def efficiency_png(series: Sequence[dict[str, Any]], baselines: Sequence[dict[st
     ax.set_xlabel("training examples")
     ax.set_ylabel(f"{metric} (seed mean; band = seed min to max)")
     ax.set_title(f"Data efficiency: {metric} as the training set grows", fontsize=10)
+    fig.legend(loc="outside lower center", ncols=1, fontsize=8, frameon=False)
+    _style(ax)
+    return _png(fig)
+
+
+def expected_best_png(curves: Sequence[tuple[str, Sequence[float], Sequence[float]]], metric: str) -> bytes | None:
+    """Expected best dev score against the number of tuning trials: one line per arm, a ±sd band around it.
+
+    `curves` items: (label, means, sds), the values for n = 1, 2, ...; an arm with an empty curve (no
+    finished trial) is left out, and with no points at all there is no figure (None).
+    """
+    drawn = [(label, means, sds) for label, means, sds in curves if len(means)]
+    if not drawn:
+        return None
+    fig = _figure(8.0, 4.8)
+    ax = fig.add_subplot()
+    for i, (label, means, sds) in enumerate(drawn):
+        colour = _SERIES[i % len(_SERIES)]
+        n = np.arange(1, len(means) + 1)
+        mean, sd = np.asarray(means, dtype=float), np.asarray(sds, dtype=float)
+        ax.fill_between(n, mean - sd, mean + sd, color=colour, alpha=0.18, linewidth=0)
+        ax.plot(n, mean, "o-", color=colour, linewidth=1.6, markersize=4, label=label)
+    # trial counts are whole numbers; MaxNLocator keeps long sweeps from crowding the axis
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+    ax.set_xlabel("tuning trials (n)")
+    ax.set_ylabel(f"expected best dev {metric} (band = ± sd)")
+    ax.set_title(f"Expected best dev {metric} by number of tuning trials", fontsize=10)
     fig.legend(loc="outside lower center", ncols=1, fontsize=8, frameon=False)
     _style(ax)
     return _png(fig)

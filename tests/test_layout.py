@@ -21,6 +21,8 @@ LATE_IMPORTS = {
     ("commands", "*"): "each verb imports what it uses, so `--help` and typos answer at once",
     ("config.checks", "harness.metrics.scores"): "keeps scikit-learn out of config loading",
     ("config.checks", "harness.methods.templates"): "methods import the config package",
+    ("experiments.budget", "harness.experiments.forecast"): "forecasting loads checkpoints to measure this machine's "
+                                                            "speed: only when a budget is given",
     ("experiments.sweep", "harness.experiments.cluster"): "the cluster machinery (and Ray) load only when asked for",
     ("experiments.cluster", "harness.experiments.cluster_task"): "what a Ray task runs loads in the worker",
     ("experiments.cluster_task", "*"): "a Ray worker imports the task module first; the run machinery loads "

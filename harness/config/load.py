@@ -85,7 +85,10 @@ def key_location(cfg: Config, key: str) -> str:
         in_file = get_dotted(fix_yaml_numbers(data), key, "")
     except HarnessError:
         in_file = missing
-    used = get_dotted(config_to_dict(cfg), key, "") if key.split(".")[0] != "sweep" else missing
+    try:  # a run of a sweep has an empty sweep block: its sweep keys are not the file's
+        used = get_dotted(config_to_dict(cfg), key, "")
+    except HarnessError:
+        used = missing
     if in_file is not missing and thaw(in_file) == used and key in lines:
         return f"'{key}' in {cfg.source} line {lines[key]}"
     if in_file is missing and key not in lines:

@@ -19,11 +19,14 @@ from dataclasses import dataclass
 from harness.config import Config, key_location
 from harness.config.tune_space import parse_duration
 from harness.errors import HarnessError
+from harness.experiments.tune import Trial
 
 __all__ = ["Fitted", "fit_budget", "sweep_cost"]
 
 Log = Callable[[str], None]
 Forecaster = Callable[[Sequence[Config]], list[float]]
+# (trials, runs of the grid, the tuned arm each run stands in for) for a trial count: sweep.expand_planned
+Planner = Callable[[Config, "int | None"], "tuple[list[Trial], list[Config], list[int | None]]"]
 _FLOOR = 2
 
 
@@ -50,11 +53,9 @@ def _remaining(forecaster: Forecaster, runs: Sequence[Config]) -> list[float]:
     return forecaster(runs) if runs else []
 
 
-def sweep_cost(cfg: Config, trials: int | None, forecaster: Forecaster) -> float:
+def sweep_cost(cfg: Config, trials: int | None, forecaster: Forecaster, planner: Planner) -> float:
     """Forecast seconds still to spend on the sweep with `trials` per tuned arm (None: all of them)."""
-    from harness.experiments.sweep import expand_planned  # late: sweep imports this module
-
-    trial_list, finals, stand_in = expand_planned(cfg, trials)
+    trial_list, finals, stand_in = planner(cfg, trials)
     trial_cost = _remaining(forecaster, [t.cfg for t in trial_list])
     final_cost = _remaining(forecaster, finals)
     by_arm: dict[int, float] = {}
@@ -67,7 +68,8 @@ def sweep_cost(cfg: Config, trials: int | None, forecaster: Forecaster) -> float
     return total
 
 
-def fit_budget(cfg: Config, budget: str | None, log: Log, forecaster: Forecaster | None = None) -> Fitted:
+def fit_budget(cfg: Config, budget: str | None, log: Log, planner: Planner,
+               forecaster: Forecaster | None = None) -> Fitted:
     """The sweep that fits `budget` (or sweep.budget) by the module's rule; a refusal is a HarnessError."""
     tune = cfg.sweep.tune
     text = budget if budget is not None else cfg.sweep.budget
@@ -75,14 +77,16 @@ def fit_budget(cfg: Config, budget: str | None, log: Log, forecaster: Forecaster
         return Fitted(cfg, tune.trials if tune else None, None)
     limit = parse_duration(text, "--budget" if budget is not None else key_location(cfg, "sweep.budget") + ":")
     if forecaster is None:
-        from harness.experiments.forecast import forecast_runs  # late: forecasting loads models, only when asked
+        from harness.experiments.forecast import (
+            forecast_runs,  # late: forecasting loads models, only when asked
+        )
 
         def forecaster(runs: Sequence[Config]) -> list[float]:
             return [f.total_seconds for f in forecast_runs(runs, log=log)]
 
     trials = tune.trials if tune else None
     seeds = len(cfg.sweep.grid.get("train.seed", ()))
-    cost = sweep_cost(cfg, trials, forecaster)
+    cost = sweep_cost(cfg, trials, forecaster, planner)
     first = f"forecast {_minutes(cost)} for the sweep as written"
     if cost <= limit:
         log(f"budget {_minutes(limit)}: {first}; it fits")
@@ -95,12 +99,12 @@ def fit_budget(cfg: Config, budget: str | None, log: Log, forecaster: Forecaster
     steps: list[str] = []
     while cost > limit and trials is not None and trials > _FLOOR:
         trials -= 1
-        cost = sweep_cost(cfg, trials, forecaster)
+        cost = sweep_cost(cfg, trials, forecaster, planner)
         steps.append(f"{trials} trials per arm: {_minutes(cost)}")
     while cost > limit and seeds > _FLOOR:
         seeds -= 1
         cfg = _with_seeds(cfg, seeds)
-        cost = sweep_cost(cfg, trials, forecaster)
+        cost = sweep_cost(cfg, trials, forecaster, planner)
         steps.append(f"{seeds} seeds: {_minutes(cost)}")
     if cost > limit:
         raise HarnessError(f"{'--budget' if budget is not None else key_location(cfg, 'sweep.budget')} {text}: "

@@ -247,7 +247,7 @@ def run_sweep(
     harness.experiments.cluster.ClusterSpec) sends the runs to a Ray cluster's workers; None runs
     them here, one after another.
     """
-    fitted = fit_budget(cfg, budget, log)
+    fitted = fit_budget(cfg, budget, log, expand_planned)
     cfg, trials = fitted.cfg, trial_runs(fitted.cfg, fitted.trials)
     folder = sweep_folder(cfg, name)
     roles = {i: {"role": "trial", "arm": t.arm, "trial": t.index, "settings": t.settings} for i, t in enumerate(trials)}
@@ -339,7 +339,7 @@ def _note_rules(cfg: Config, hits: list[int], reused: int, log: Log) -> None:
 def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, budget: str | None = None) -> None:
     """Log the runs a sweep (or one shard of it) would do, tuning trials first, with their forecast cost; run
     nothing. A budget is fitted first (harness.experiments.budget), so the plan is the one that would run."""
-    fitted = fit_budget(cfg, budget, log)
+    fitted = fit_budget(cfg, budget, log, expand_planned)
     trials, finals, stand_in = expand_planned(fitted.cfg, fitted.trials)
     _note_rules(fitted.cfg, *_expand(fitted.cfg)[1:], log)
     runs = [t.cfg for t in trials] + finals

@@ -19,10 +19,10 @@ from typing import Any
 from harness.config import Config, config_from_dict, config_to_dict, set_dotted
 from harness.config.dotted import thaw
 from harness.config.tune_space import ARM_KEY, arm_space, draw_settings
+from harness.experiments.steps import run_state
 from harness.files import read_json
 from harness.metrics.scores import METRICS
 from harness.runs.folders import run_folder, run_id
-from harness.experiments.steps import run_state
 
 __all__ = ["Trial", "arm_data", "arm_name", "choose_settings", "trial_runs", "tune_seed"]
 

@@ -27,6 +27,8 @@ from harness.report.render import (
     to_markdown,
     write_documents,
 )
+from harness.report.tuning import FIGURE as TUNING_FIGURE
+from harness.report.tuning import tuning_blocks
 
 __all__ = ["terminal_text", "write_comparison"]
 
@@ -109,6 +111,8 @@ def _blocks(result: dict[str, Any], figures: dict[str, bytes]) -> list[Block]:
     if "data_efficiency.png" in figures:
         blocks += [Heading("Data efficiency"),
                    Image("data_efficiency.png", figures["data_efficiency.png"], "data efficiency curve")]
+    if result.get("tuning"):  # a tuned sweep: how each arm's settings were chosen, on dev only
+        blocks += tuning_blocks(result["tuning"])
     blocks += [Heading("Before you act on this"), Bullets(CAUTIONS)]
     if _others(result):
         blocks += [Heading("Other metrics"), _other_table(result)]
@@ -150,7 +154,9 @@ def write_comparison(result: dict[str, Any], out_dir: Path) -> list[Path]:
             ["series", "train_examples", "seeds", f"{primary}_mean", f"{primary}_sd", f"{primary}_min",
              f"{primary}_max"], eff_rows))
         files.append(out_dir / "data_efficiency.csv")
+    blocks = _blocks(result, figures)
     files += [out_dir / n for n in figures]
+    files += [out_dir / b.file for b in blocks if isinstance(b, Image) and b.file == TUNING_FIGURE]
     tests = ("pairing", "delta", "delta_lo", "delta_hi", "p_value", "p_mcnemar")
     csv_rows = [[r["group"], r["checkpoint"], r["method"], r["detail"], r["train_examples"], r["n"],
                  " ".join(map(str, r["seeds"])), r["mean"], r["sd"], r["min"], r["max"], *r["interval"],
@@ -162,7 +168,7 @@ def write_comparison(result: dict[str, Any], out_dir: Path) -> list[Path]:
          f"{primary}_mean", f"{primary}_sd", f"{primary}_min", f"{primary}_max", "interval_lo", "interval_hi",
          *(f"{m}_mean" for m in others), "train_seconds", "trainable_parameters", "peak_rss_mb", "pairing",
          "delta_vs_best", "delta_lo", "delta_hi", "p_value", "p_mcnemar_median"], csv_rows))
-    write_documents(_blocks(result, figures), f"Comparison: {result['display']}", out_dir / "comparison.md",
+    write_documents(blocks, f"Comparison: {result['display']}", out_dir / "comparison.md",
                     out_dir / "comparison.html")
     atomic_write_json(out_dir / "comparison.json", {**result, "files": [str(f) for f in files]})
     return files

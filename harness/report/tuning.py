@@ -192,7 +192,10 @@ def tuning_blocks(summary: dict[str, Any]) -> list[Block]:
     blocks: list[Block] = [
         Heading("Tuning"),
         Para(f"Each arm ran up to {trials} trials with settings drawn at random (seed {summary.get('seed')}), "
-             f"each scored by dev {_display(summary)}; the chosen trial's settings were kept."),
+             f"each trained on train with one seed and scored by dev {_display(summary)}; the test split played no "
+             "part in the choice. The chosen trial's settings then ran with every seed and were scored on test "
+             "(the tables above). Every tuned arm had the same number of trials, so no arm won by having been "
+             "tuned more."),
         chosen_table(summary),
         Heading("Expected best dev score by number of trials"), expected_best_table(summary),
         Para(reading_aid(summary)),

@@ -118,8 +118,8 @@ def render_draft(*, name: str, task: Mapping[str, Any], origin: Mapping[str, str
         "# Four ways to build the classifier, each run with every seed of the grid: a fresh head on the encoder,",
         "# a fresh head on the decoder, the decoder trained to write the label words, and the decoder",
         "# prompted zero-shot with calibration (no training). Check the plan with `tiltyard sweep CONFIG --dry-run`.",
-        "# The training settings are the packaged bake-off's (configs/bakeoff.yaml), tuned there on a different",
-        "# task: a losing arm may have lost to its settings, so try a second learning rate before trusting a verdict.",
+        "# The learning rates are not taken on trust: sweep.tune below gives every trained arm the same number",
+        "# of trials on dev before the seeds run on test. Fit the whole sweep to your time with --budget 15m.",
         *_task_lines(task, origin, data, columns_how),
         "model:",
         f"  checkpoint: {_q(encoder)}   # the base arm's checkpoint; each arm below names its own",
@@ -161,5 +161,12 @@ def render_draft(*, name: str, task: Mapping[str, Any], origin: Mapping[str, str
         "  # (zero-shot prompting does not use the seed: the sweep runs that arm once, for every seed)",
         "  grid:",
         f"    train.seed: [{seed_list}]",
+        "  # The same tuning budget for every trained arm: `trials` settings drawn with one seed, each trained on",
+        "  # train and scored on dev only; each arm's best trial then runs with every seed and is scored on test.",
+        "  tune:",
+        "    trials: 3",
+        "    space:",
+        "      train.learning_rate: {low: 2.0e-5, high: 3.0e-4, scale: log}",
+        "      train.head_learning_rate: {low: 3.0e-4, high: 3.0e-3, scale: log}   # head arms only",
     ]
     return "\n".join(lines) + "\n"

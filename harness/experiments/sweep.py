@@ -282,6 +282,9 @@ def run_sweep(
         meta.update(runs_total=len(runs), data_files=start)
         log(f"sweep {name}: {len(trials)} tuning trials first ({fitted.trials} per trained arm, scored on dev)"
             + ("" if shard is None else f", shard {meta['shard']}: {len(picked)}"))
+        # then the other shards' trials: unstarted ones are taken over, running ones waited for (claims keep
+        # any trial from running twice), so every shard goes on to its seeds with every arm's choice made
+        picked += [i for i in range(len(trials)) if i not in picked]
         phase(picked)
         chosen, held, tuning = choose_settings(cfg, trials)
         if is_main_process():

@@ -225,3 +225,22 @@ def test_cli_bad_budget_is_one_line_and_exit_2(tmp_path: Path, capsys: pytest.Ca
     err = capsys.readouterr().err.strip()
     assert "--budget 'soon'" in err and len(err.splitlines()) == 1
     assert not (tmp_path / "runs").exists()  # nothing written
+
+
+def test_shards_share_the_trials_and_split_the_seeds(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from harness.experiments.sweep import parse_shard
+    from harness.runs import run as runner
+
+    real, ran = runner.execute_run, []
+
+    def counting(cfg: Any, **kw: Any) -> Any:
+        ran.append(run_folder(cfg).name)
+        return real(cfg, **kw)
+
+    monkeypatch.setattr(runner, "execute_run", counting)
+    cfg = load_config(_write(tmp_path, TUNED))
+    first = run_sweep(cfg, "tuned", shard=parse_shard("0/2"), compare=False, log=lambda _: None)
+    # shard 0 found nobody running shard 1's trials, so it ran them too, then only its own share of the seeds
+    assert len(ran) == 6 + 3 and not first["held"]
+    second = run_sweep(cfg, "tuned", shard=parse_shard("1/2"), compare=False, log=lambda _: None)
+    assert len(ran) == 6 + 5 and len(set(ran)) == 11 and not second["failed"]  # every run exactly once

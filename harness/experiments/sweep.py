@@ -194,7 +194,8 @@ def _run_claimed(cfg: Config, start: dict[str, str], tag: str, log: Log, shown: 
     log(f"{tag} {'resuming from its last checkpoint' if step == 'resume' else 'running'}")
     try:
         # looked up at call time (a module attribute), so tests can stand in for execute_run
-        runner.execute_run(cfg, resume=step == "resume", overwrite=step == "rerun", log=log, shown_findings=shown)
+        runner.execute_run(cfg, resume=step == "resume", overwrite=step == "rerun", log=log, shown_findings=shown,
+                           reuse_training=True)
     except Interrupted:
         raise  # Ctrl-C: the runner saved a checkpoint and marked the run; stop the whole sweep
     except Exception as exc:  # why: one broken run must not stop the rest; the error goes to status.json

@@ -45,6 +45,7 @@ from harness.models.backbones import position_limit
 from harness.report.run_report import write_run_report
 from harness.runs.claim import claim_launched
 from harness.runs.folders import environment_info, read_status, run_folder, write_status
+from harness.runs.twin import adopt_training, dev_twin, twin_cost
 from harness.train.checkpoints import Interrupted
 from harness.train.loop import set_threads, train
 from harness.train.memory import peak_rss_mb, reset_peak_rss
@@ -157,7 +158,7 @@ def _predictions(split: Split, probs: Any, label_names: Sequence[str], *, texts:
 def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, force: bool = False,
                 log: Callable[[str], Any] = logger.info, on_step: Callable[[int], None] | None = None,
                 shown_findings: set[str] | None = None, prepare: Callable[[Method], None] | None = None,
-                threads: int | None = None) -> Path:
+                threads: int | None = None, reuse_training: bool = False) -> Path:
     """Run `cfg` (one config, one seed) and return its folder; see the module docstring for the rules.
 
     `force` is `overwrite` under the command line's name (--force). `on_step(step)` runs after every
@@ -167,18 +168,20 @@ def execute_run(cfg: Config, *, resume: bool = False, overwrite: bool = False, f
     runs once the method is built, before training (the benchmark's ablations set attributes through it).
     `threads` is the torch thread count when the config leaves `train.threads` unset (a cluster task
     passes the CPUs it was given). The run is claimed (harness.runs.claim) before anything is written
-    and held to the end: a run another process holds raises `RunBusy`.
+    and held to the end: a run another process holds raises `RunBusy`. `reuse_training` lets a new run
+    scored on test take over the training of its finished tuning trial (harness.runs.twin).
     """
     process_state()  # joins launched processes before anything else
     folder = run_folder(cfg)
     with claim_launched(folder):
         return _execute_claimed(cfg, folder, resume=resume, overwrite=overwrite or force, log=log,
-                                on_step=on_step, shown_findings=shown_findings, threads=threads, prepare=prepare)
+                                on_step=on_step, shown_findings=shown_findings, threads=threads, prepare=prepare,
+                                reuse_training=reuse_training)
 
 
 def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool, log: Callable[[str], Any],
                      on_step: Callable[[int], None] | None, shown_findings: set[str] | None,
-                     threads: int | None, prepare: Callable[[Method], None] | None) -> Path:
+                     threads: int | None, prepare: Callable[[Method], None] | None, reuse_training: bool) -> Path:
     processes = process_state().num_processes
     main = is_main_process()
     state = _folder_state(folder)
@@ -189,10 +192,11 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
         raise HarnessError(f"run {folder} already finished; use --force to run it again "
                            "(or --resume to skip finished runs)")
     resume = resume and not overwrite and (folder / "checkpoints" / "last.pt").exists()
+    twin = dev_twin(cfg) if reuse_training and state is None else None
     reset_peak_rss()  # this run's own peak, not the largest of a sweep so far
     try:
         threads = set_threads(cfg.train.threads or threads)
-        data, method, audit, (train_items, dev_items, test_items) = _load_inputs(cfg, folder if resume else None)
+        data, method, audit, (train_items, dev_items, test_items) = _load_inputs(cfg, folder if resume else twin)
         if prepare is not None:
             prepare(method)
     except Exception as exc:
@@ -203,7 +207,10 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
         raise
     if main:
         _start_folder(folder, resume)
-        write_status(folder, "running", resumed=resume)
+        if twin is not None:
+            adopt_training(twin, folder)
+            log(f"training taken over from tuning trial {twin.name} (same settings and seed; scoring test)")
+        write_status(folder, "running", resumed=resume, **({"training_from": twin.name} if twin else {}))
     wait_for_everyone()  # the folder exists before anyone trains
     try:
         if main:
@@ -218,7 +225,7 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
                     shown_findings.add(finding)
         result = None
         if method.trains:
-            result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume,
+            result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume or twin is not None,
                            on_step=on_step, threads=threads)
         scored, items = (data.dev, dev_items) if cfg.eval.score_on == "dev" else (data.test, test_items)
         started = time.perf_counter()
@@ -228,7 +235,8 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
             metrics = compute_metrics(list(scored.labels), probs, data.label_names, positive=cfg.eval.positive,
                                       bootstrap=cfg.eval.bootstrap, ci=cfg.eval.ci, seed=cfg.train.seed)
             metrics["scored_on"] = cfg.eval.score_on
-            metrics["cost"] = {**_cost(method, result, eval_seconds), "processes": processes}
+            metrics["cost"] = {**_cost(method, result, eval_seconds), "processes": processes,
+                               **(twin_cost(twin) if twin is not None else {})}
             if result is not None:
                 metrics["dev"] = {"best_step": result.best_step, cfg.eval.primary: result.best_value,
                                   "metrics": result.best_metrics, "stopped_early": result.stopped_early}

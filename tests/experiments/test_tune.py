@@ -244,3 +244,32 @@ def test_shards_share_the_trials_and_split_the_seeds(tmp_path: Path, monkeypatch
     assert len(ran) == 6 + 3 and not first["held"]
     second = run_sweep(cfg, "tuned", shard=parse_shard("1/2"), compare=False, log=lambda _: None)
     assert len(ran) == 6 + 5 and len(set(ran)) == 11 and not second["failed"]  # every run exactly once
+
+
+def test_the_tune_seed_run_takes_over_its_trials_training_and_matches_training_again(tmp_path: Path) -> None:
+    import dataclasses
+
+    from harness.runs.run import execute_run
+
+    cfg = load_config(_write(tmp_path, TUNED))
+    summary = run_sweep(cfg, "tuned", compare=False, log=lambda _: None)
+    taken = []
+    for record in summary["runs"]:
+        if record["role"] == "run" and record["method"] != "prompt":
+            cost = read_json(Path(record["path"], "metrics.json"))["cost"]
+            taken.append((record["seed"], cost.get("training_from")))
+    # seed 1 is the tune seed: those runs trained nothing themselves; seed 2 trained
+    assert sorted(seed for seed, source in taken if source) == [1, 1]
+    assert all(source is None for seed, source in taken if seed == 2)
+    record = next(r for r in summary["runs"] if r["role"] == "run" and r["method"] == "head" and r["seed"] == 1)
+    run = load_config(Path(record["path"], "config.yaml"))
+    again = execute_run(dataclasses.replace(run, output=str(tmp_path / "again")), log=lambda _: None)
+    assert "training_from" not in read_json(again / "metrics.json")["cost"]
+
+    def probs(folder: Path) -> list[Any]:
+        return [json.loads(line)["probs"] for line in (folder / "predictions.jsonl").read_text().splitlines()]
+
+    # training is seeded and never reads the scored split (common practice: seeded training is repeatable on one
+    # machine and thread count), so taking the trial's weights equals training again, to the last bit
+    assert probs(Path(record["path"])) == probs(again)
+    assert read_json(Path(record["path"], "metrics.json"))["cost"]["train_seconds"] > 0  # the trial's own cost

@@ -45,7 +45,11 @@ def _parser() -> argparse.ArgumentParser:
     p = verbs.add_parser("sweep", help="expand the config's sweep block and run every combination")
     p.add_argument("config", type=Path)
     _add_set(p)
-    p.add_argument("--dry-run", action="store_true", help="list the runs and an estimated cost, run nothing")
+    p.add_argument("--dry-run", action="store_true",
+                   help="list the runs with a forecast of their cost on this machine, run none of them")
+    p.add_argument("--no-calibrate", action="store_true",
+                   help="with --dry-run: do not measure this machine's speed (a few seconds per checkpoint and "
+                        "method, then cached); forecast only from cached speeds and finished runs")
     p.add_argument("--shard", default=None, metavar="I/N", help="run only every N-th run starting at I (0-based)")
     p.add_argument("--no-compare", action="store_true", help="skip the comparison report at the end")
     p.add_argument("--cluster", default=None, metavar="WHERE",

@@ -281,12 +281,15 @@ def _note_rules(cfg: Config, hits: list[int], reused: int, log: Log) -> None:
             "not use; each such run is done once and stands for every seed")
 
 
-def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log) -> None:
-    """Log the runs a sweep (or one shard of it) would do, with their estimated cost; run nothing."""
+def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, *, calibrate: bool = True) -> None:
+    """Log the runs a sweep (or one shard of it) would do, with their forecast cost; train nothing for them.
+
+    `calibrate` measures this machine's speed first where it is not cached (harness.experiments.forecast).
+    """
     runs, hits, reused = _expand(cfg)
     _note_rules(cfg, hits, reused, log)
     picked = [i for i in range(len(runs)) if shard is None or i % shard[1] == shard[0]]
-    plan = estimate_runs([runs[i] for i in picked])
     log(f"sweep {name}: {len(runs)} runs" + ("" if shard is None else f", shard {shard[0]}/{shard[1]}: {len(picked)}")
         + f"; sweep folder {sweep_folder(cfg, name)}")
+    plan = estimate_runs([runs[i] for i in picked], log=log, calibrate=calibrate)
     log_plan(picked, plan, log)

@@ -241,3 +241,35 @@ def test_bad_durations_are_refused_naming_the_option(text: str) -> None:
         "expected a duration like 15m, 90s or 1h30m")
     with pytest.raises(HarnessError, match="^--time-limit "):
         parse_duration(text, option="--time-limit")
+
+
+def test_a_failed_measurement_leaves_the_run_unknown_with_the_reason(tmp_path: Path,
+                                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    from harness.runs import run as runner
+
+    def refuse(cfg: Config, **_: object) -> Path:
+        raise HarnessError("data file vanished")
+
+    monkeypatch.setattr(runner, "execute_run", refuse)  # looked up at call time by the measurement
+    lines: list[str] = []
+    out = forecast_runs([_config(tmp_path)], log=lines.append, speed_folder=tmp_path / "speed")[0]
+    assert lines[-1] == "could not measure toy:encoder head, batch 2: data file vanished"
+    assert out.basis == "unknown: measuring failed (data file vanished)" and out.total_seconds is None
+    assert not (tmp_path / "speed").exists()  # nothing cached: the next dry run measures again
+
+
+def test_a_finished_run_reports_what_it_took_or_that_it_was_not_recorded(tmp_path: Path) -> None:
+    from harness.files import atomic_write_json
+    from harness.runs.folders import run_folder, write_status
+
+    done, bare = _config(tmp_path), _config(tmp_path, "bare.yaml", train={"seed": 2})
+    for cfg, cost in ((done, {"train_seconds": 4.0, "eval_seconds": 0.25}), (bare, {"steps": 3})):
+        folder = run_folder(cfg)
+        folder.mkdir(parents=True)
+        atomic_write_json(folder / "metrics.json", {"metrics": {}, "cost": cost})
+        write_status(folder, "finished")
+    lines: list[str] = []
+    out = forecast_runs([done, bare], log=lines.append, speed_folder=tmp_path / "speed")
+    assert (out[0].train_seconds, out[0].score_seconds, out[0].total_seconds) == (4.0, 0.25, 4.25)
+    assert out[0].basis == "measured (finished)" and out[1].basis == "finished, cost not recorded"
+    assert out[1].total_seconds is None and lines == []  # nothing left to run: nothing measured

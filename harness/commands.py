@@ -42,8 +42,8 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_sweep(args: argparse.Namespace) -> int:
     """`sweep CONFIG`: every combination of the sweep block, then the comparison."""
     return sweep_command(args.config, args.overrides, dry_run=args.dry_run, shard=args.shard,
-                         compare=not args.no_compare, calibrate=not args.no_calibrate, cluster=args.cluster, workers=args.workers,
-                         cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights)
+                         compare=not args.no_compare, calibrate=not args.no_calibrate, cluster=args.cluster,
+                         workers=args.workers, cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights)
 
 
 def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_run: int | None = None,

@@ -126,6 +126,14 @@ def _data(datas: dict[str, TaskData], cfg: Config) -> TaskData:
     return datas[json.dumps([config_to_dict(cfg)["task"], cfg.train.seed], sort_keys=True)]
 
 
+def _busy(speed: Speed) -> str:
+    """A note when other processes used much of the CPU while the speed was measured (a shared machine)."""
+    if speed.others is None or speed.others < 0.25:
+        return ""
+    return (f" (other processes used {speed.others:.0%} of this machine's CPU meanwhile: this is its speed "
+            "while shared so, and the runs will be as fast only if it stays so)")
+
+
 def _units(work: RunWork) -> tuple[float, float]:
     """(training, scoring) padded FLOPs, the dev evaluations counted with training (as train_seconds counts them)."""
     return work.train_flops(padded=True) + work.dev_flops(padded=True), work.test_flops(padded=True)
@@ -189,7 +197,7 @@ def forecast_runs(runs: Sequence[Config], *, log: Log, calibrate: bool = True,
                 log(f"could not measure {family_name(cfg)}: {failed[fam]}")
             else:
                 cache.put(fam[1], speed)
-                log(f"measured {family_name(cfg)} in {speed.seconds:.1f} s")
+                log(f"measured {family_name(cfg)} in {speed.seconds:.1f} s" + _busy(speed))
         speeds[fam] = speed
     done: dict[tuple[int, str], list[tuple[RunWork, float, float]]] = {}
     for i, cfg in enumerate(runs):

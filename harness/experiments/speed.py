@@ -35,6 +35,7 @@ from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 from typing import Any
 
+import psutil
 import torch
 
 from harness.config import Config, config_folder, config_to_dict
@@ -67,6 +68,7 @@ class Speed:
     train_rate: float = 0.0  # seconds per padded training FLOP (0: the method does not train)
     first_step: float = 0.0  # seconds, once per run that trains
     per_eval: float = 0.0  # seconds per dev evaluation beyond its scoring
+    others: float | None = None  # the share of this machine's CPU time other processes used meanwhile
 
     @property
     def date(self) -> str:
@@ -186,6 +188,22 @@ def _quiet() -> Iterator[None]:
         logger.setLevel(level)
 
 
+def _cpu_seconds() -> tuple[float, float]:
+    """(CPU seconds the whole machine has been busy, CPU seconds of this process) so far."""
+    machine, own = psutil.cpu_times(), psutil.Process().cpu_times()
+    busy = machine.user + machine.nice + machine.system + getattr(machine, "irq", 0.0) + getattr(machine, "softirq", 0.0)
+    return busy, own.user + own.system
+
+
+def _others_share(before: tuple[float, float], after: tuple[float, float], wall: float) -> float | None:
+    """The share of all cores' time over `wall` seconds that other processes kept busy (0 on an idle machine)."""
+    cores = psutil.cpu_count() or 1
+    if wall <= 0:
+        return None
+    others = (after[0] - before[0]) - (after[1] - before[1])
+    return min(1.0, max(0.0, others / (wall * cores)))
+
+
 def measure_speed(cfg: Config) -> Speed:
     """Run `cfg` small (see `_small`) in a temporary folder and derive its family's speed from the timings."""
     stamps: list[float] = []
@@ -195,12 +213,14 @@ def measure_speed(cfg: Config) -> Speed:
         held["method"], held["at"] = method, time.perf_counter()
 
     threads = resolve_threads(cfg.train.threads)
+    busy_before = _cpu_seconds()
     started = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="tiltyard-speed-") as tmp, _quiet():
         small = _small(cfg, Path(tmp))
         folder = runner.execute_run(small, log=lambda _: None, shown_findings=set(), prepare=prepare,
                                     on_step=lambda step: stamps.append(time.perf_counter()), threads=threads)
         wall = time.perf_counter() - started
+        busy_after = _cpu_seconds()
         cost = read_json(folder / "metrics.json")["cost"]
         method: Method = held["method"]
         data = load_task(small.task, seed=small.train.seed, base=config_folder(small))
@@ -208,7 +228,8 @@ def measure_speed(cfg: Config) -> Speed:
     score_rate = float(cost["eval_seconds"]) / max(work.test_flops(padded=True), 1.0)
     train_seconds = float(cost["train_seconds"])
     speed = Speed(score_rate=score_rate, overhead=max(0.0, wall - train_seconds - float(cost["eval_seconds"])),
-                  measured=time.strftime("%Y-%m-%dT%H:%M:%S%z"), seconds=time.perf_counter() - started)
+                  measured=time.strftime("%Y-%m-%dT%H:%M:%S%z"), seconds=time.perf_counter() - started,
+                  others=_others_share(busy_before, busy_after, wall))
     if not method.trains or not stamps:
         return speed
     timed = work.train.step_tokens[1:len(stamps)] if len(stamps) > 1 else work.train.step_tokens[:1]

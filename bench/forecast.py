@@ -24,6 +24,7 @@ from typing import Any
 from bench.flops import machine_info
 from harness.config import load_config
 from harness.experiments.forecast import Forecast, forecast_runs
+from harness.experiments.speed import cpu_seconds, others_share
 from harness.experiments.sweep import expand_sweep
 from harness.files import read_json
 from harness.runs.run import execute_run
@@ -53,13 +54,14 @@ def forecast_accuracy(config: Path, out: Path, *, overrides: Sequence[str] = (),
         shown: set[str] = set()  # as a sweep does: each data finding once
         for n, (run, f) in enumerate(zip(runs, forecasts, strict=True), 1):
             log(f"[{n}/{len(runs)}] {f.run_id}: forecast {_s(f.total_seconds)} s ...")
-            began = time.perf_counter()
+            busy, began = cpu_seconds(), time.perf_counter()
             folder = execute_run(run, log=lambda _: None, shown_findings=shown)
             wall = time.perf_counter() - began
+            others = others_share(busy, cpu_seconds(), wall)
             cost = read_json(folder / "metrics.json")["cost"]
             if not keep_runs:
                 shutil.rmtree(folder)
-            rows.append(_row(run, f, wall, cost))
+            rows.append({**_row(run, f, wall, cost), "others_cpu": others})
             log(f"    measured {wall:.1f} s ({'within' if rows[-1]['within'] else 'outside'} +-{TOLERANCE:.0%})")
     finally:
         if not keep_runs:
@@ -92,6 +94,10 @@ def _s(value: float | None) -> str:
     return "?" if value is None else f"{value:.1f}"
 
 
+def _share(value: float | None) -> str:
+    return "?" if value is None else f"{value:.0%}"
+
+
 def render_forecast(report: dict[str, Any]) -> str:
     """The report as Markdown: the machine, one row per run (forecast against measured), the share within."""
     m = report["machine"]
@@ -105,15 +111,17 @@ def render_forecast(report: dict[str, Any]) -> str:
              "Forecast: train (with its dev evaluations) + scoring + overhead (loading, files, report); measured: "
              "the run's own train_seconds and eval_seconds (metrics.json) and the wall clock around its whole "
              "execute_run call; other = wall - train - scoring.", "",
+             "Others' CPU: the share of the machine's CPU time other processes used during the run (the speed "
+             "was measured with whatever they used then).", "",
              "| run | method | basis | forecast train / score / overhead = total s | measured train / score / other "
-             f"= wall s | forecast / wall | within ±{report['tolerance']:.0%} |",
-             "|---|---|---|---|---|---|---|"]
+             f"= wall s | forecast / wall | within ±{report['tolerance']:.0%} | others' CPU |",
+             "|---|---|---|---|---|---|---|---|"]
     for r in rows:
         f, x = r["forecast"], r["measured"]
         ratio = "?" if r["ratio"] is None else f"{r['ratio']:.2f}"
         lines.append(f"| {r['id']} | {r['method']} | {r['basis']} | {_s(f['train'])} / {_s(f['score'])} / "
                      f"{_s(f['overhead'])} = {_s(f['total'])} | {x['train']:.1f} / {x['score']:.1f} / {x['other']:.1f} "
-                     f"= {x['wall']:.1f} | {ratio} | {'yes' if r['within'] else 'no'} |")
+                     f"= {x['wall']:.1f} | {ratio} | {'yes' if r['within'] else 'no'} | {_share(r['others_cpu'])} |")
     total = report["total"]
     lines += ["", f"{report['within']} of {len(rows)} runs within ±{report['tolerance']:.0%} of their wall time"
               + ("" if share is None else f" ({share:.0%})") + f"; all runs: forecast {total['forecast'] / 60:.1f} min, "

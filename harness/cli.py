@@ -48,8 +48,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--dry-run", action="store_true",
                    help="list the runs with a forecast of their cost on this machine, run none of them")
     p.add_argument("--no-calibrate", action="store_true",
-                   help="with --dry-run: do not measure this machine's speed (a few seconds per checkpoint and "
-                        "method, then cached); forecast only from cached speeds and finished runs")
+                   help="with --dry-run: do not measure this machine's speed (seconds per checkpoint and method, "
+                        "once, then cached); forecast only from cached speeds and finished runs")
     p.add_argument("--shard", default=None, metavar="I/N", help="run only every N-th run starting at I (0-based)")
     p.add_argument("--no-compare", action="store_true", help="skip the comparison report at the end")
     p.add_argument("--cluster", default=None, metavar="WHERE",

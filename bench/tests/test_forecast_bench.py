@@ -39,6 +39,7 @@ def test_every_run_of_the_sweep_is_forecast_run_and_compared(tmp_path: Path, toy
         assert f["total"] == pytest.approx(f["train"] + f["score"] + f["overhead"])
         assert x["wall"] > 0 and x["other"] == pytest.approx(x["wall"] - x["train"] - x["score"])
         assert row["ratio"] == pytest.approx(f["total"] / x["wall"]) and row["within"] == within(f["total"], x["wall"])
+        assert 0.0 <= row["others_cpu"] <= 1.0  # the share of the CPU other processes used meanwhile
     assert report["runs"][2]["forecast"]["train"] == 0.0 and report["runs"][2]["measured"]["train"] == 0.0
     assert report["within"] == sum(r["within"] for r in report["runs"])
     assert report["share_within"] == pytest.approx(report["within"] / 3)

@@ -47,8 +47,8 @@ from harness.methods.registry import Method
 from harness.runs import run as runner  # the module: execute_run looked up at call time
 from harness.train.loop import resolve_threads
 
-__all__ = ["STEPS", "Speed", "SpeedCache", "family_key", "family_name", "machine_fingerprint", "measure_speed",
-           "speed_dir"]
+__all__ = ["STEPS", "Speed", "SpeedCache", "cpu_seconds", "family_key", "family_name", "machine_fingerprint",
+           "measure_speed", "others_share", "speed_dir"]
 
 STEPS = 4  # optimiser steps of a measurement: the first warms up, the other three are timed
 PROMPT_ROWS = 16  # rows scored when measuring a method that does not train
@@ -188,14 +188,14 @@ def _quiet() -> Iterator[None]:
         logger.setLevel(level)
 
 
-def _cpu_seconds() -> tuple[float, float]:
+def cpu_seconds() -> tuple[float, float]:
     """(CPU seconds the whole machine has been busy, CPU seconds of this process) so far."""
     machine, own = psutil.cpu_times(), psutil.Process().cpu_times()
     busy = machine.user + machine.nice + machine.system + getattr(machine, "irq", 0.0) + getattr(machine, "softirq", 0.0)
     return busy, own.user + own.system
 
 
-def _others_share(before: tuple[float, float], after: tuple[float, float], wall: float) -> float | None:
+def others_share(before: tuple[float, float], after: tuple[float, float], wall: float) -> float | None:
     """The share of all cores' time over `wall` seconds that other processes kept busy (0 on an idle machine)."""
     cores = psutil.cpu_count() or 1
     if wall <= 0:
@@ -213,14 +213,14 @@ def measure_speed(cfg: Config) -> Speed:
         held["method"], held["at"] = method, time.perf_counter()
 
     threads = resolve_threads(cfg.train.threads)
-    busy_before = _cpu_seconds()
+    busy_before = cpu_seconds()
     started = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="tiltyard-speed-") as tmp, _quiet():
         small = _small(cfg, Path(tmp))
         folder = runner.execute_run(small, log=lambda _: None, shown_findings=set(), prepare=prepare,
                                     on_step=lambda step: stamps.append(time.perf_counter()), threads=threads)
         wall = time.perf_counter() - started
-        busy_after = _cpu_seconds()
+        busy_after = cpu_seconds()
         cost = read_json(folder / "metrics.json")["cost"]
         method: Method = held["method"]
         data = load_task(small.task, seed=small.train.seed, base=config_folder(small))
@@ -229,7 +229,7 @@ def measure_speed(cfg: Config) -> Speed:
     train_seconds = float(cost["train_seconds"])
     speed = Speed(score_rate=score_rate, overhead=max(0.0, wall - train_seconds - float(cost["eval_seconds"])),
                   measured=time.strftime("%Y-%m-%dT%H:%M:%S%z"), seconds=time.perf_counter() - started,
-                  others=_others_share(busy_before, busy_after, wall))
+                  others=others_share(busy_before, busy_after, wall))
     if not method.trains or not stamps:
         return speed
     timed = work.train.step_tokens[1:len(stamps)] if len(stamps) > 1 else work.train.step_tokens[:1]

@@ -278,10 +278,10 @@ def test_a_finished_run_reports_what_it_took_or_that_it_was_not_recorded(tmp_pat
 def test_the_share_of_the_cpu_other_processes_used_while_measuring() -> None:
     import psutil
 
-    from harness.experiments.speed import _others_share
+    from harness.experiments.speed import others_share
 
     cores = psutil.cpu_count() or 1
     # the machine was busy 30 CPU seconds in 10 s of wall time, 10 of them this process's: others used 20
-    assert _others_share((100.0, 10.0), (130.0, 20.0), 10.0) == pytest.approx(min(1.0, 20 / (10 * cores)))
-    assert _others_share((100.0, 10.0), (105.0, 15.0), 10.0) == 0.0  # only this process: an idle machine
-    assert _others_share((0.0, 0.0), (1.0, 0.0), 0.0) is None
+    assert others_share((100.0, 10.0), (130.0, 20.0), 10.0) == pytest.approx(min(1.0, 20 / (10 * cores)))
+    assert others_share((100.0, 10.0), (105.0, 15.0), 10.0) == 0.0  # only this process: an idle machine
+    assert others_share((0.0, 0.0), (1.0, 0.0), 0.0) is None

@@ -45,7 +45,11 @@ def _parser() -> argparse.ArgumentParser:
     p = verbs.add_parser("sweep", help="expand the config's sweep block and run every combination")
     p.add_argument("config", type=Path)
     _add_set(p)
-    p.add_argument("--dry-run", action="store_true", help="list the runs and their forecast cost, run nothing")
+    p.add_argument("--dry-run", action="store_true",
+                   help="list the runs with a forecast of their cost on this machine, run none of them")
+    p.add_argument("--no-calibrate", action="store_true",
+                   help="with --dry-run: do not measure this machine's speed (seconds per checkpoint and method, "
+                        "once, then cached); forecast only from cached speeds and finished runs")
     p.add_argument("--budget", default=None, metavar="TIME",
                    help="wall-time budget on this machine, e.g. 15m or 1h30m: a sweep forecast over it is trimmed "
                         "(fewer trials, then fewer seeds) or refused (sweep.over_budget); default: sweep.budget")

@@ -42,8 +42,9 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_sweep(args: argparse.Namespace) -> int:
     """`sweep CONFIG`: every combination of the sweep block, then the comparison."""
     return sweep_command(args.config, args.overrides, dry_run=args.dry_run, shard=args.shard,
-                         compare=not args.no_compare, cluster=args.cluster, workers=args.workers,
-                         cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights, budget=args.budget)
+                         compare=not args.no_compare, calibrate=not args.no_calibrate, cluster=args.cluster,
+                         workers=args.workers, cpus_per_run=args.cpus_per_run, fetch_weights=args.fetch_weights,
+                         budget=args.budget)
 
 
 def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_run: int | None = None,
@@ -81,7 +82,7 @@ def cluster_spec(cluster: str | None, *, workers: int | None = None, cpus_per_ru
 def sweep_command(
     config_path: Path, overrides: Sequence[str] = (), *, dry_run: bool = False, shard: str | None = None,
     compare: bool = True, cluster: str | None = None, workers: int | None = None, cpus_per_run: int | None = None,
-    fetch_weights: bool = False, budget: str | None = None,
+    fetch_weights: bool = False, calibrate: bool = True, budget: str | None = None,
 ) -> int:
     """Exit 0 when every run (of the shard) finished, 1 when some failed.
 
@@ -94,6 +95,8 @@ def sweep_command(
     from harness.train.processes import is_main_process
 
     parts = parse_shard(shard)
+    if not calibrate and not dry_run:
+        raise HarnessError("--no-calibrate goes with --dry-run: a sweep that runs measures nothing beforehand")
     spec = None if dry_run else cluster_spec(cluster, workers=workers, cpus_per_run=cpus_per_run,
                                              fetch_weights=fetch_weights)
     if spec is not None and cluster is None:
@@ -104,7 +107,7 @@ def sweep_command(
                            f"'{PROGRAM} run {config_path}'")
     name = Path(config_path).stem
     if dry_run:
-        plan_sweep(cfg, name, parts, print, budget=budget)
+        plan_sweep(cfg, name, parts, print, calibrate=calibrate, budget=budget)
         return 0
     # the other processes of a launch walk the sweep silently
     summary = run_sweep(cfg, name, shard=parts, compare=compare, log=print if is_main_process() else _silent,

@@ -4,6 +4,8 @@
     python scripts/benchmark.py --quick         # smoke run: a few hundred examples, 1 seed
     python scripts/benchmark.py --threads 1     # force the thread count of every contender
     python scripts/benchmark.py --resume        # after an interruption: keep the jobs that finished
+    python scripts/benchmark.py --forecast      # forecast accuracy: the bake-off sweep forecast, then run
+                                                # (configs/bakeoff.yaml; writes docs/forecast_accuracy.md/.json)
 
 Contenders run one after another in fresh subprocesses (so peak memory is per contender),
 alternating A B / B A from one seed to the next so that machine drift hits both alike. Writes
@@ -82,15 +84,26 @@ def memory_jobs(jobs: list[dict[str, Any]]) -> list[dict[str, Any]]:
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--quick", action="store_true", help="a smoke run: few examples, one seed")
-    parser.add_argument("--out", default=str(REPO / "bench_out"), help="output folder (default bench_out/)")
+    parser.add_argument("--out", default=None, help="output folder (default bench_out/; docs/ with --forecast)")
+    parser.add_argument("--forecast", nargs="?", const=str(REPO / "configs" / "bakeoff.yaml"), default=None,
+                        metavar="CONFIG", help="measure forecast accuracy instead: forecast every run of CONFIG's "
+                                               "sweep (default configs/bakeoff.yaml), run them, compare")
     parser.add_argument("--resume", action="store_true",
                         help="keep the results of jobs an interrupted run of the same command finished")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads for every contender (default: harness = physical cores, "
                              "reference = torch's default)")
     args = parser.parse_args()
+    if args.forecast is not None:  # its own benchmark: no contenders, one sweep forecast and then run
+        from bench.forecast import forecast_accuracy, render_forecast
+
+        report = forecast_accuracy(Path(args.forecast), Path(args.out or REPO / "docs").resolve(),
+                                   overrides=[f"train.threads={args.threads}"] if args.threads else [],
+                                   log=lambda line: print(line, flush=True))
+        print(render_forecast(report))
+        return 0
     plan = QUICK if args.quick else FULL
-    out = Path(args.out).resolve()
+    out = Path(args.out or REPO / "bench_out").resolve()
     jobs_dir = out / "jobs"
     started = time.perf_counter()
 

@@ -202,7 +202,7 @@ def _check_sweep(cfg: Config, where: Where) -> None:
         for key in rule:
             get_dotted(base, key, f"sweep.exclude[{i}] in {cfg.source}")
     if cfg.sweep.budget is not None:
-        parse_duration(cfg.sweep.budget, where("sweep.budget") + ":")
+        parse_duration(cfg.sweep.budget, option=where("sweep.budget") + ":")
     _check_tune(cfg, base, where)
 
 

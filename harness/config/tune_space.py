@@ -25,18 +25,20 @@ __all__ = ["ARM_KEY", "arm_space", "check_space", "draw_settings", "parse_durati
 ARM_KEY = "tune"  # an arm's own search space (or false: leave the arm untuned), in place of sweep.tune.space
 _SCALES = ("linear", "log")
 _NOT_TUNABLE = ("task.", "model.", "eval.", "sweep", "output", "train.seed")
-_UNIT = {"s": 1.0, "m": 60.0, "h": 3600.0}
-_DURATION = re.compile(r"(\d+(?:\.\d+)?)\s*([hms])")
+_PART = r"(\d+(?:\.\d+)?|\.\d+)"
+_DURATION = re.compile(rf"(?:{_PART}h)?(?:{_PART}m)?(?:{_PART}s)?")
 
 
-def parse_duration(text: str, what: str = "--budget") -> float:
-    """'15m', '90s', '1h30m', '2.5h' -> seconds; anything else is refused with one line naming `what`."""
-    s = str(text).strip().lower().replace(" ", "")
-    if re.fullmatch(r"(\d+(\.\d+)?[hms])+", s):
-        seconds = sum(float(n) * _UNIT[u] for n, u in _DURATION.findall(s))
-        if seconds > 0:
-            return seconds
-    raise HarnessError(f"{what} {text!r}: expected a duration like 15m, 90s or 1h30m (more than 0)")
+def parse_duration(text: str, *, option: str = "--budget") -> float:
+    """Seconds in a duration such as '15m', '90s', '1h30m' or '2.5h'; anything else is refused naming `option`."""
+    found = _DURATION.fullmatch(re.sub(r"\s+", "", text.lower()))
+    if found is None or not any(found.groups()):
+        raise HarnessError(f"{option} {text!r}: expected a duration like 15m, 90s or 1h30m")
+    hours, minutes, seconds = (float(g) if g else 0.0 for g in found.groups())
+    total = hours * 3600 + minutes * 60 + seconds
+    if total <= 0:
+        raise HarnessError(f"{option} {text!r}: a budget must be longer than 0 s")
+    return total
 
 
 def _is_int(value: Any) -> bool:

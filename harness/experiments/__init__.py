@@ -3,7 +3,10 @@
 | module | one idea |
 |---|---|
 | `sweep` | expand the sweep block, run every run (skip finished, resume the rest), compare |
-| `plan` | what a sweep will cost before it runs (`sweep --dry-run`) |
+| `plan` | what a sweep will cost before it runs (`sweep --dry-run`): the table and its total |
+| `forecast` | every run's forecast seconds and their basis; `parse_duration` for budgets |
+| `work` | a run's work: parameters x its own tokens x the passes its method makes |
+| `speed` | this machine's speed per family of runs, measured by a short real run, cached per machine |
 | `draft` | a starter bake-off config from one labelled data file (`tiltyard draft`) |
 | `draft_words` | label words for it: short, distinct in context, one token where possible |
 | `draft_yaml` | the starter config as commented YAML |

@@ -19,12 +19,15 @@ from dataclasses import dataclass
 from harness.config import Config, key_location
 from harness.config.tune_space import parse_duration
 from harness.errors import HarnessError
-from harness.experiments.tune import Trial
+from harness.experiments.steps import run_state
+from harness.experiments.tune import Trial, tune_seed
+from harness.runs.folders import run_folder
+from harness.runs.twin import dev_twin
 
-__all__ = ["Fitted", "fit_budget", "sweep_cost"]
+__all__ = ["Fitted", "fit_budget", "machine_forecaster", "sweep_cost"]
 
 Log = Callable[[str], None]
-Forecaster = Callable[[Sequence[Config]], list[float]]
+Forecaster = Callable[[Sequence[Config]], list[tuple[float, float]]]  # per run: (training, total) seconds left
 # (trials, runs of the grid, the tuned arm each run stands in for) for a trial count: sweep.expand_planned
 Planner = Callable[[Config, "int | None"], "tuple[list[Trial], list[Config], list[int | None]]"]
 _FLOOR = 2
@@ -49,23 +52,44 @@ def _with_seeds(cfg: Config, count: int) -> Config:
     return dataclasses.replace(cfg, sweep=dataclasses.replace(cfg.sweep, grid=grid))
 
 
-def _remaining(forecaster: Forecaster, runs: Sequence[Config]) -> list[float]:
-    return forecaster(runs) if runs else []
-
-
 def sweep_cost(cfg: Config, trials: int | None, forecaster: Forecaster, planner: Planner) -> float:
     """Forecast seconds still to spend on the sweep with `trials` per tuned arm (None: all of them)."""
     trial_list, finals, stand_in = planner(cfg, trials)
-    trial_cost = _remaining(forecaster, [t.cfg for t in trial_list])
-    final_cost = _remaining(forecaster, finals)
-    by_arm: dict[int, float] = {}
-    for trial, seconds in zip(trial_list, trial_cost, strict=True):
-        by_arm[trial.arm] = max(by_arm.get(trial.arm, 0.0), seconds)
-    # a tuned arm's seeds: at the dearest of its trials (what it will choose is not known yet)
-    total = sum(trial_cost)
-    for run_arm, seconds in zip(stand_in, final_cost, strict=True):
-        total += by_arm.get(run_arm, seconds) if run_arm is not None and seconds > 0 else seconds
-    return total
+    trial_cost = forecaster([t.cfg for t in trial_list]) if trial_list else []
+    final_cost = forecaster(finals) if finals else []
+    dearest: dict[int, tuple[float, float]] = {}
+    for trial, (train, total) in zip(trial_list, trial_cost, strict=True):
+        if total >= dearest.get(trial.arm, (0.0, -1.0))[1]:
+            dearest[trial.arm] = (train, total)
+    seed = tune_seed(cfg) if cfg.sweep.tune is not None else None
+    cost = sum(total for _, total in trial_cost)
+    for run, arm, (_, total) in zip(finals, stand_in, final_cost, strict=True):
+        if arm is None or arm not in dearest:
+            cost += total  # final settings known: the forecaster saw the run itself
+        else:  # still tuning: at the dearest trial; the tune seed's run takes over its trial's training
+            train, whole = dearest[arm]
+            cost += whole - train if run.train.seed == seed else whole
+    return cost
+
+
+def machine_forecaster(log: Log) -> Forecaster:
+    """This machine's forecast (harness.experiments.forecast) as seconds still to spend: a finished run costs
+    nothing, a run whose tuning trial trained it (harness.runs.twin) costs its scoring; an unknown is refused."""
+    from harness.experiments.forecast import forecast_runs  # late: forecasting loads models, only when asked
+
+    def forecast(runs: Sequence[Config]) -> list[tuple[float, float]]:
+        out = []
+        for run, f in zip(runs, forecast_runs(runs, log=log), strict=True):
+            if run_state(run_folder(run))["state"] == "finished":
+                out.append((0.0, 0.0))
+                continue
+            if f.total_seconds is None or f.train_seconds is None:
+                raise HarnessError(f"cannot fit the sweep to a budget: run {f.run_id} has no forecast ({f.basis})")
+            train = 0.0 if dev_twin(run) is not None else f.train_seconds
+            out.append((train, f.total_seconds - f.train_seconds + train))
+        return out
+
+    return forecast
 
 
 def fit_budget(cfg: Config, budget: str | None, log: Log, planner: Planner,
@@ -75,18 +99,11 @@ def fit_budget(cfg: Config, budget: str | None, log: Log, planner: Planner,
     text = budget if budget is not None else cfg.sweep.budget
     if text is None:
         return Fitted(cfg, tune.trials if tune else None, None)
-    limit = parse_duration(text, "--budget" if budget is not None else key_location(cfg, "sweep.budget") + ":")
-    if forecaster is None:
-        from harness.experiments.forecast import (
-            forecast_runs,  # late: forecasting loads models, only when asked
-        )
-
-        def forecaster(runs: Sequence[Config]) -> list[float]:
-            return [f.total_seconds for f in forecast_runs(runs, log=log)]
-
+    limit = parse_duration(text, option="--budget" if budget is not None else key_location(cfg, "sweep.budget") + ":")
+    forecast = forecaster if forecaster is not None else machine_forecaster(log)
     trials = tune.trials if tune else None
     seeds = len(cfg.sweep.grid.get("train.seed", ()))
-    cost = sweep_cost(cfg, trials, forecaster, planner)
+    cost = sweep_cost(cfg, trials, forecast, planner)
     first = f"forecast {_minutes(cost)} for the sweep as written"
     if cost <= limit:
         log(f"budget {_minutes(limit)}: {first}; it fits")
@@ -99,12 +116,12 @@ def fit_budget(cfg: Config, budget: str | None, log: Log, planner: Planner,
     steps: list[str] = []
     while cost > limit and trials is not None and trials > _FLOOR:
         trials -= 1
-        cost = sweep_cost(cfg, trials, forecaster, planner)
+        cost = sweep_cost(cfg, trials, forecast, planner)
         steps.append(f"{trials} trials per arm: {_minutes(cost)}")
     while cost > limit and seeds > _FLOOR:
         seeds -= 1
         cfg = _with_seeds(cfg, seeds)
-        cost = sweep_cost(cfg, trials, forecaster, planner)
+        cost = sweep_cost(cfg, trials, forecast, planner)
         steps.append(f"{seeds} seeds: {_minutes(cost)}")
     if cost > limit:
         raise HarnessError(f"{'--budget' if budget is not None else key_location(cfg, 'sweep.budget')} {text}: "

@@ -1,7 +1,9 @@
-"""What a sweep will cost before it runs (`tiltyard sweep --dry-run`): measured where known, never guessed.
+"""What a sweep will cost before it runs (`tiltyard sweep --dry-run`): a forecast for every run.
 
-Estimates use only finished runs of the same checkpoint, method and max_length (seconds per
-example-epoch); with none to go on, a run's cost is 'unknown'.
+Each run's training, scoring and total seconds come from `harness.experiments.forecast`: its work
+(parameters x its own tokens x the passes it makes) at this machine's measured speed, or what
+finished runs like it took; a finished run shows what it took. The table says which basis each
+line rests on, and the total line what the runs still to do will take on this machine.
 """
 
 from __future__ import annotations
@@ -13,15 +15,11 @@ from typing import Any
 
 from harness.config import Config, config_folder, config_to_dict
 from harness.data.task import load_task
-from harness.errors import HarnessError
-from harness.files import read_json
-from harness.runs.folders import read_status, run_folder, run_id
+from harness.experiments.forecast import Forecast, forecast_runs
+from harness.experiments.steps import run_state
+from harness.runs.folders import run_folder, run_id
 
-__all__ = ["estimate_runs", "log_plan"]
-
-
-def _state(folder: Path) -> str:
-    return str(read_status(folder)["state"]) if (folder / "status.json").exists() else "new"
+__all__ = ["estimate_runs", "log_plan", "seconds_text"]
 
 
 def _example_epochs(cfg: Config, train_rows: int) -> float:
@@ -34,70 +32,57 @@ def _example_epochs(cfg: Config, train_rows: int) -> float:
     return float(seen)
 
 
-def _train_seconds(folder: Path) -> float | None:
-    try:
-        cost = read_json(folder / "metrics.json").get("cost", {})
-    except HarnessError:
-        return None
-    value = cost.get("train_seconds")
-    return float(value) if isinstance(value, (int, float)) else None
+def estimate_runs(runs: Sequence[Config], *, log: Callable[[str], None] = lambda _: None, calibrate: bool = True,
+                  speed_folder: Path | None = None) -> list[dict[str, Any]]:
+    """Per run: its config, id, state, training rows, examples x epochs and its `Forecast`.
 
-
-def estimate_runs(runs: Sequence[Config]) -> list[dict[str, Any]]:
-    """Per run: state, training rows, examples x epochs and training seconds, measured or estimated.
-
-    Estimates use only finished runs of the same checkpoint, method and max_length (seconds per
-    example-epoch); with none to go on the estimate is None ('unknown'), never a made-up rate.
+    `calibrate` measures this machine's speed for families not measured yet (see `forecast_runs`).
     """
     rows_cache: dict[str, int] = {}
     out: list[dict[str, Any]] = []
-    for cfg in runs:
+    forecasts = forecast_runs(runs, log=log, calibrate=calibrate, speed_folder=speed_folder)
+    for cfg, forecast in zip(runs, forecasts, strict=True):
         key = json.dumps([config_to_dict(cfg)["task"], cfg.train.seed], sort_keys=True)
         if key not in rows_cache:  # the same base folder as the runner's
-            base = config_folder(cfg)
-            rows_cache[key] = len(load_task(cfg.task, seed=cfg.train.seed, base=base).train)
-        folder = run_folder(cfg)
-        state = _state(folder)
+            rows_cache[key] = len(load_task(cfg.task, seed=cfg.train.seed, base=config_folder(cfg)).train)
         rows = rows_cache[key]
-        out.append({"cfg": cfg, "id": run_id(cfg), "state": state, "train_rows": rows,
-                    "example_epochs": _example_epochs(cfg, rows), "group": (cfg.model.checkpoint, cfg.method.kind,
-                                                                            cfg.train.max_length),
-                    "measured": _train_seconds(folder) if state == "finished" else None})
-    rates: dict[Any, list[float]] = {}
-    for r in out:
-        if r["measured"] is not None and r["example_epochs"] > 0:
-            acc = rates.setdefault(r["group"], [0.0, 0.0, 0.0])  # seconds, example-epochs, runs
-            acc[0], acc[1], acc[2] = acc[0] + r["measured"], acc[1] + r["example_epochs"], acc[2] + 1
-    for r in out:
-        sums = rates.get(r["group"])
-        r["estimate"] = 0.0 if r["example_epochs"] == 0 else (
-            sums[0] / sums[1] * r["example_epochs"] if sums else None)
-        r["basis"] = int(sums[2]) if sums else 0
+        out.append({"cfg": cfg, "id": run_id(cfg), "state": str(run_state(run_folder(cfg))["state"]),
+                    "train_rows": rows, "example_epochs": _example_epochs(cfg, rows), "forecast": forecast})
     return out
 
 
+def seconds_text(seconds: float | None) -> str:
+    """'12.3' (seconds), '?' when unknown."""
+    return "?" if seconds is None else f"{seconds:.1f}"
+
+
+def _minutes(seconds: float) -> str:
+    minutes = seconds / 60
+    return f"~{minutes:.1f} min" if minutes < 10 else f"~{minutes:.0f} min"
+
+
 def log_plan(picked: Sequence[int], plan: Sequence[dict[str, Any]], log: Callable[[str], None]) -> None:
-    """The dry run's table (one line per run) and its total, as `estimate_runs` gives them."""
-    log(f"{'#':>3}  {'run id':<40} {'checkpoint':<22} {'method':<10} {'seed':>5} {'train':>6} {'state':<11} train time")
-    known, unknown, estimated, examples = 0.0, 0, 0, 0.0
+    """The dry run's table (one line per run: forecast train, scoring and total seconds, basis) and its total."""
+    log(f"{'#':>3}  {'run id':<40} {'checkpoint':<22} {'method':<10} {'seed':>5} {'train':>6} {'state':<11} "
+        f"{'train s':>8} {'score s':>8} {'total s':>8}  basis")
+    todo, known, unknown, examples = 0, 0.0, 0, 0.0
     for i, r in zip(picked, plan, strict=True):
-        c = r["cfg"]
-        if r["measured"] is not None:
-            when = f"{r['measured']:.1f} s measured"
-        elif r["estimate"] is None:
-            when, unknown = "unknown", unknown + 1
-        elif r["example_epochs"] == 0:
-            when = "0 s (no training)"
-        else:
-            when, estimated = f"~{r['estimate']:.1f} s estimated from {r['basis']} finished run(s) like it", estimated + 1
-        if r["state"] != "finished":
-            known += r["estimate"] or 0.0
-            examples += r["example_epochs"]
+        c, f = r["cfg"], r["forecast"]
+        assert isinstance(f, Forecast)  # estimate_runs builds every row with one
         log(f"{i:>3}  {r['id']:<40} {c.model.checkpoint[:22]:<22} {c.method.kind:<10} {c.train.seed:>5} "
-            f"{r['train_rows']:>6} {r['state']:<11} {when}")
-    todo = sum(1 for r in plan if r["state"] != "finished")
-    when = f"~{known:.0f} s estimated from measured rates" if estimated else ""
+            f"{r['train_rows']:>6} {r['state']:<11} {seconds_text(f.train_seconds):>8} "
+            f"{seconds_text(f.score_seconds):>8} {seconds_text(f.total_seconds):>8}  {f.basis}")
+        if r["state"] == "finished":
+            continue
+        todo += 1
+        examples += r["example_epochs"]
+        if f.total_seconds is None:
+            unknown += 1
+        else:
+            known += f.total_seconds
+    line = f"forecast: {_minutes(known)} for {todo - unknown} runs on this machine"
     if unknown:  # said plainly rather than guessed: a rate from another checkpoint would mislead
-        when += (" plus " if when else "") + f"{unknown} runs of unknown cost (no finished run like them yet)"
-    log(f"to run: {todo} runs, {examples:g} training examples x epochs; training time: {when or '0 s'}; "
-        "scoring time not included")
+        line += f", plus {unknown} runs of unknown cost"
+    finished = len(plan) - todo
+    log(line + f" ({todo} to run, {examples:g} training examples x epochs"
+        + (f"; {finished} finished, not counted)" if finished else ")"))

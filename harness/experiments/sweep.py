@@ -340,9 +340,12 @@ def _note_rules(cfg: Config, hits: list[int], reused: int, log: Log) -> None:
             "not use; each such run is done once and stands for every seed")
 
 
-def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, budget: str | None = None) -> None:
-    """Log the runs a sweep (or one shard of it) would do, tuning trials first, with their forecast cost; run
-    nothing. A budget is fitted first (harness.experiments.budget), so the plan is the one that would run."""
+def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, *, calibrate: bool = True,
+               budget: str | None = None) -> None:
+    """Log the runs a sweep (or one shard of it) would do, tuning trials first, with their forecast cost; train
+    nothing for them. `calibrate` measures this machine's speed first where it is not cached
+    (harness.experiments.forecast). A budget is fitted first (harness.experiments.budget), so the plan is the
+    one that would run."""
     fitted = fit_budget(cfg, budget, log, expand_planned)
     trials, finals, stand_in = expand_planned(fitted.cfg, fitted.trials)
     _note_rules(fitted.cfg, *_expand(fitted.cfg)[1:], log)
@@ -353,4 +356,4 @@ def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, 
         + f"; sweep folder {sweep_folder(fitted.cfg, name)}")
     if any(a is not None for a in stand_in):
         log("runs of a tuned arm are shown with the arm's own settings until its trials have chosen")
-    log_plan(picked, estimate_runs([runs[i] for i in picked]), log)
+    log_plan(picked, estimate_runs([runs[i] for i in picked], log=log, calibrate=calibrate), log)

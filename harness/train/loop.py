@@ -32,7 +32,7 @@ from harness.train.checkpoints import Checkpoints, Interrupted, TrainState, inte
 from harness.train.processes import any_process, average_gradients, is_main_process, local_process_count
 
 __all__ = ["TrainResult", "evaluate", "make_accelerator", "make_loader", "make_optimizer", "make_scheduler", "planned_steps",
-           "release_large_blocks", "seed_everything", "set_threads", "train", "update_best"]
+           "release_large_blocks", "resolve_threads", "seed_everything", "set_threads", "train", "update_best"]
 
 
 @dataclass(frozen=True)
@@ -55,16 +55,20 @@ def seed_everything(seed: int) -> None:
     torch.manual_seed(seed)
 
 
-def set_threads(threads: int | None) -> int:
-    """torch intra-op threads: train.threads, else the physical cores this process may use (hyper-threads
-    slow matmuls down)."""
+def resolve_threads(threads: int | None) -> int:
+    """The torch thread count `set_threads` would set, without setting it (the forecast keys speeds on it)."""
     import psutil
-
 
     cores = psutil.cpu_count(logical=False) or torch.get_num_threads()
     if hasattr(os, "sched_getaffinity"):  # the share a scheduler gave this process (Slurm's cpuset, taskset)
         cores = min(cores, len(os.sched_getaffinity(0)))
-    n = threads or max(1, cores // local_process_count())  # processes launched together share the cores
+    return threads or max(1, cores // local_process_count())  # processes launched together share the cores
+
+
+def set_threads(threads: int | None) -> int:
+    """torch intra-op threads: train.threads, else the physical cores this process may use (hyper-threads
+    slow matmuls down)."""
+    n = resolve_threads(threads)
     torch.set_num_threads(n)
     return n
 

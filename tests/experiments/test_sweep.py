@@ -129,7 +129,7 @@ def test_zero_shot_prompt_runs_once_for_every_seed(tmp_path: Path) -> None:
     assert kinds == [("head", 0, 1), ("head", 0, 2), ("head", 0, 3), ("prompt", 0, 1),
                      ("prompt", 2, 1), ("prompt", 2, 2), ("prompt", 2, 3)]
     lines: list[str] = []
-    sweep_module.plan_sweep(cfg, "grid", None, lines.append)
+    sweep_module.plan_sweep(cfg, "grid", None, lines.append, calibrate=False)
     assert any("2 zero-shot prompt combinations differ only in train.seed" in line for line in lines)
 
 
@@ -150,7 +150,7 @@ def test_shard_syntax_is_checked() -> None:
 
 def _fake_runner(calls: list[str]) -> Any:
     """Stands in for runner.execute_run where only the sweep's bookkeeping is under test: records the call
-    and marks the run finished, with a measured training time of 3.0 s."""
+    and marks the run finished, with a measured training time of 3.0 s and test scoring time of 0.5 s."""
     from harness.files import atomic_write_json
     from harness.runs.folders import run_folder, write_status
 
@@ -158,7 +158,7 @@ def _fake_runner(calls: list[str]) -> Any:
         calls.append(run_id(cfg))
         folder = run_folder(cfg)
         folder.mkdir(parents=True, exist_ok=True)
-        atomic_write_json(folder / "metrics.json", {"metrics": {}, "cost": {"train_seconds": 3.0}})
+        atomic_write_json(folder / "metrics.json", {"metrics": {}, "cost": {"train_seconds": 3.0, "eval_seconds": 0.5}})
         write_status(folder, "finished")
         return folder
 
@@ -181,27 +181,63 @@ def test_shards_run_every_run_exactly_once(tmp_path: Path, monkeypatch: pytest.M
         sweep_command(path, [], shard="2/2")
 
 
-def test_dry_run_lists_runs_and_honest_costs(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                                             capsys: pytest.CaptureFixture[str]) -> None:
-    sweep = "grid:\n  method: [{kind: head}, {kind: prompt}]\n  train.seed: [1, 2, 3]\n"
+def _seconds(line: str) -> tuple[str, str, str]:
+    """The forecast train, scoring and total columns of a dry-run table line."""
+    parts = re.search(r" (new|finished) +(\S+) +(\S+) +(\S+)  ", line)
+    assert parts, line
+    return parts.group(2), parts.group(3), parts.group(4)
+
+
+def test_dry_run_forecasts_every_run(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                     capsys: pytest.CaptureFixture[str]) -> None:
+    from harness.experiments.speed import speed_dir
+
+    shutil.rmtree(speed_dir(), ignore_errors=True)  # this session's speeds: the test measures its own
+    sweep = "arms:\n  - {method.kind: head}\n  - {model.checkpoint: toy:decoder, method.kind: prompt}\n" \
+            "grid:\n  train.seed: [1, 2, 3]\n"
     path = _write(tmp_path, sweep, rows=24)
-    assert main(["sweep", str(path), "--dry-run"]) == 0
+    runs = expand_sweep(load_config(path))
+    assert main(["sweep", str(path), "--dry-run", "--no-calibrate"]) == 0
     out = capsys.readouterr().out
-    for run in expand_sweep(load_config(path)):  # id, checkpoint, method, seed, training rows, state
-        assert re.search(rf"{run_id(run)} +toy:encoder +{run.method.kind} +{run.train.seed} +24 new ", out)
-    assert out.count(" new ") == 4  # 3 head runs and one zero-shot prompt run for all seeds; none measured yet:
-    assert sum(line.endswith(" unknown") for line in out.splitlines()) == 3
-    assert "0 s (no training)" in out and "3 runs of unknown cost" in out
-    assert not (tmp_path / "runs").exists()  # a dry run writes nothing
+    lines = {run_id(run): next(ln for ln in out.splitlines() if run_id(run) in ln) for run in runs}
+    for run in runs:  # id, checkpoint, method, seed, training rows, state
+        assert re.search(rf"{run_id(run)} +{run.model.checkpoint} +{run.method.kind} +{run.train.seed} +24 new ", out)
+    assert len(runs) == 4  # 3 head runs and one zero-shot prompt run for all seeds; nothing measured yet:
+    assert [_seconds(lines[run_id(r)]) for r in runs] == [("?", "?", "?")] * 3 + [("0.0", "?", "?")]
+    assert all(ln.endswith("unknown: not measured on this machine, no finished run like it") for ln in lines.values())
+    assert "forecast: ~0.0 min for 0 runs on this machine, plus 4 runs of unknown cost (4 to run" in out
+    assert "measuring" not in out and not (tmp_path / "runs").exists()  # a dry run writes no run folder
     calls: list[str] = []
     monkeypatch.setattr(runner, "execute_run", _fake_runner(calls))
-    run_sweep(load_config(path), "grid", shard=(0, 6), compare=False, log=lambda _: None)  # the first head run only
-    assert sweep_command(path, [], dry_run=True) == 0
+    run_sweep(load_config(path), "grid", shard=(0, 4), compare=False, log=lambda _: None)  # the first head run only
+    monkeypatch.setattr(runner, "execute_run", _REAL_EXECUTE)  # the speed measurement runs for real
+    assert sweep_command(path, [], dry_run=True, calibrate=False) == 0
     out = capsys.readouterr().out
-    assert "3.0 s measured" in out
-    # same checkpoint, method and length, same 24 rows x 1 epoch: the measured 3.0 s carries over, labelled so
-    assert out.count("~3.0 s estimated from 1 finished run(s) like it") == 2
-    assert "unknown" not in out
+    out_lines = [next(ln for ln in out.splitlines() if k in ln) for k in lines]
+    assert _seconds(out_lines[0]) == ("3.0", "0.5", "3.5") and out_lines[0].endswith("measured (finished)")
+    # the same 24 rows x 1 epoch in another order: the finished run's seconds per unit of work carry over
+    for line in out_lines[1:3]:
+        train, score, total = map(float, _seconds(line))
+        assert line.endswith("from 1 finished runs") and 2.4 < train < 3.6 and 0.4 < score < 0.6
+        assert total == pytest.approx(train + score, abs=0.11)  # no overhead known without a measurement
+    assert out_lines[3].endswith("unknown: not measured on this machine, no finished run like it")
+    assert sweep_command(path, [], dry_run=True) == 0  # measured by default
+    out = capsys.readouterr().out
+    assert re.search(r"measuring this machine's speed for toy:encoder head, batch 8 \(once, cached in .+\)", out)
+    assert "measuring this machine's speed for toy:decoder prompt, batch 8" in out
+    rows = [next(ln for ln in out.splitlines() if k in ln) for k in lines]
+    assert all(re.search(r"from 1 finished runs, calibrated \d{4}-\d\d-\d\d$", ln) for ln in rows[1:3])
+    assert re.search(r"calibrated on this machine \d{4}-\d\d-\d\d$", rows[3]) and "unknown" not in out
+    assert re.search(r"forecast: ~\d+\.\d min for 3 runs on this machine \(3 to run, 48 training examples x "
+                     r"epochs; 1 finished, not counted\)", out)
+    assert sweep_command(path, [], dry_run=True) == 0 and "measuring" not in capsys.readouterr().out  # cached
+
+
+def test_no_calibrate_goes_with_dry_run(tmp_path: Path) -> None:
+    path = _write(tmp_path, "grid:\n  train.seed: [1, 2]\n")
+    with pytest.raises(HarnessError, match="^--no-calibrate goes with --dry-run"):
+        sweep_command(path, [], calibrate=False)
+    assert not (tmp_path / "runs").exists()
 
 
 def _counting(calls: list[tuple[str, bool]], hook: Any = None) -> Any:

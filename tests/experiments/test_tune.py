@@ -14,7 +14,7 @@ import yaml
 
 from harness.cli import main
 from harness.config import load_config
-from harness.config.tune_space import draw_settings, parse_duration
+from harness.config.tune_space import draw_settings
 from harness.errors import HarnessError
 from harness.experiments.budget import fit_budget, sweep_cost
 from harness.experiments.sweep import expand_planned, run_sweep
@@ -171,24 +171,26 @@ def test_an_arm_whose_trials_all_fail_runs_no_seeds(tmp_path: Path, monkeypatch:
     assert "next_token" not in kinds and kinds.count("head") == 2
 
 
-def _fake_forecast(runs: Any) -> list[float]:
-    """60 s per trained run, 10 s per prompt run: a stand-in for the machine's forecast."""
-    return [10.0 if r.method.kind == "prompt" else 60.0 * r.train.epochs for r in runs]
+def _fake_forecast(runs: Any) -> list[tuple[float, float]]:
+    """(training, total) seconds: 50 + 10 s per trained run, 10 s per prompt run; a stand-in for the machine's."""
+    return [(0.0, 10.0) if r.method.kind == "prompt" else (50.0 * r.train.epochs, 60.0 * r.train.epochs) for r in runs]
 
 
 def test_budget_trims_trials_then_seeds_by_the_stated_rule(tmp_path: Path) -> None:
     sweep = TUNED.replace("train.seed: [1, 2]", "train.seed: [1, 2, 3]").replace("trials: 3", "trials: 4")
     cfg = load_config(_write(tmp_path, sweep))
-    # as written: 2 arms x 4 trials x 60 + 2 arms x 3 seeds x 60 + prompt 10 = 850 s
-    assert sweep_cost(cfg, None, _fake_forecast, expand_planned) == pytest.approx(850.0)
+    # as written: 2 arms x 4 trials x 60 s; seeds 2 and 3 at the dearest trial (2 x 2 x 60 s); the tune seed's
+    # runs take over their trial's training (2 x 10 s); the zero-shot prompt once (10 s): 750 s
+    assert sweep_cost(cfg, None, _fake_forecast, expand_planned) == pytest.approx(750.0)
     logs: list[str] = []
-    fitted = fit_budget(cfg, "12m", logs.append, expand_planned, _fake_forecast)  # 720 s: 2 trials fewer per arm (610 s)
+    fitted = fit_budget(cfg, "10m", logs.append, expand_planned, _fake_forecast)  # 3 trials: 630 s; 2: 510 s
     assert fitted.trials == 2 and len(fitted.cfg.sweep.grid["train.seed"]) == 3
     with pytest.raises(HarnessError, match="even trimmed to 2 trials per arm and 2 seeds"):
-        fit_budget(cfg, "8m", logs.append, expand_planned, _fake_forecast)  # 480 s: 2 trials (610), then 2 seeds (490): over
-    fitted = fit_budget(cfg, "8m10s", logs.append, expand_planned, _fake_forecast)
+        fit_budget(cfg, "6m", logs.append, expand_planned, _fake_forecast)  # the smallest sweep needs 390 s
+    fitted = fit_budget(cfg, "6m40s", logs.append, expand_planned, _fake_forecast)
     assert fitted.trials == 2 and fitted.cfg.sweep.grid["train.seed"] == (1, 2)
     assert "trimmed to fit" in (fitted.note or "")
+    assert fit_budget(cfg, "13m", logs.append, expand_planned, _fake_forecast).trials == 4  # fits as written
 
 
 def test_budget_refuse_names_the_trials_key_and_line(tmp_path: Path) -> None:
@@ -206,17 +208,6 @@ def test_planned_sweep_shows_tuned_arms_until_they_choose(tmp_path: Path) -> Non
     assert len(trials) == 6 and len(finals) == 5 and stand_in == [0, 0, 1, 1, None]
     chosen, held, _ = choose_settings(cfg, trials)
     assert not chosen and set(held) == {0, 1} and "3 of its 3 trials are not finished" in held[0]
-
-
-@pytest.mark.parametrize(("text", "seconds"), [("15m", 900.0), ("90s", 90.0), ("1h30m", 5400.0), ("2.5h", 9000.0)])
-def test_parse_duration(text: str, seconds: float) -> None:
-    assert parse_duration(text) == seconds
-
-
-@pytest.mark.parametrize("text", ["15x", "", "m", "0m", "-5m", "15"])
-def test_parse_duration_refuses(text: str) -> None:
-    with pytest.raises(HarnessError, match="expected a duration like 15m"):
-        parse_duration(text)
 
 
 def test_cli_bad_budget_is_one_line_and_exit_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -9,7 +9,7 @@ line rests on, and the total line what the runs still to do will take on this ma
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -61,15 +61,17 @@ def _minutes(seconds: float) -> str:
     return f"~{minutes:.1f} min" if minutes < 10 else f"~{minutes:.0f} min"
 
 
-def log_plan(picked: Sequence[int], plan: Sequence[dict[str, Any]], log: Callable[[str], None]) -> None:
-    """The dry run's table (one line per run: forecast train, scoring and total seconds, basis) and its total."""
-    log(f"{'#':>3}  {'run id':<40} {'checkpoint':<22} {'method':<10} {'seed':>5} {'train':>6} {'state':<11} "
+def log_plan(picked: Sequence[int], plan: Sequence[dict[str, Any]], log: Callable[[str], None],
+             roles: Mapping[int, str] | None = None) -> None:
+    """The dry run's table (one line per run: forecast train, scoring and total seconds, basis) and its total;
+    `roles` names what a run is for (a tuning trial, a tuned arm's seed), shown before its id."""
+    log(f"{'#':>3}  {'role':<9} {'run id':<40} {'checkpoint':<22} {'method':<10} {'seed':>5} {'train':>6} {'state':<11} "
         f"{'train s':>8} {'score s':>8} {'total s':>8}  basis")
     todo, known, unknown, examples = 0, 0.0, 0, 0.0
     for i, r in zip(picked, plan, strict=True):
         c, f = r["cfg"], r["forecast"]
         assert isinstance(f, Forecast)  # estimate_runs builds every row with one
-        log(f"{i:>3}  {r['id']:<40} {c.model.checkpoint[:22]:<22} {c.method.kind:<10} {c.train.seed:>5} "
+        log(f"{i:>3}  {(roles or {}).get(i, 'run'):<9} {r['id']:<40} {c.model.checkpoint[:22]:<22} {c.method.kind:<10} {c.train.seed:>5} "
             f"{r['train_rows']:>6} {r['state']:<11} {seconds_text(f.train_seconds):>8} "
             f"{seconds_text(f.score_seconds):>8} {seconds_text(f.total_seconds):>8}  {f.basis}")
         if r["state"] == "finished":

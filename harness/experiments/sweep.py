@@ -16,8 +16,6 @@ from __future__ import annotations
 import itertools
 import json
 import logging
-import re
-import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -36,6 +34,7 @@ from harness.experiments.steps import (
     memory_after,
     run_state,
 )
+from harness.experiments.sweep_index import parse_shard, sweep_folder, write_index
 from harness.experiments.tune import Trial, arm_data, choose_settings, trial_runs
 from harness.files import atomic_write_json
 from harness.report.compare import compare_runs
@@ -140,41 +139,6 @@ def expand_sweep(cfg: Config) -> list[Config]:
     return _expand(cfg)[0]
 
 
-def parse_shard(text: str | None) -> tuple[int, int] | None:
-    """'I/N' -> (I, N) with 0 <= I < N; None stays None."""
-    if text is None:
-        return None
-    m = re.fullmatch(r"\s*(\d+)\s*/\s*(\d+)\s*", text)
-    if not m or int(m.group(2)) < 1 or int(m.group(1)) >= int(m.group(2)):
-        raise HarnessError(f"--shard {text!r}: expected I/N with 0 <= I < N (0-based), e.g. --shard 0/2 and 1/2")
-    return int(m.group(1)), int(m.group(2))
-
-
-def sweep_folder(cfg: Config, name: str) -> Path:
-    """`<output>/<task>/sweeps/<name>/`."""
-    safe = re.sub(r"[^A-Za-z0-9_.-]+", "-", name).strip(".-") or "sweep"
-    return Path(cfg.output).resolve() / cfg.task.name / "sweeps" / safe
-
-
-def _record(index: int, cfg: Config) -> dict[str, Any]:
-    status = run_state(run_folder(cfg))
-    return {"index": index, "id": run_id(cfg), "path": str(run_folder(cfg)), "state": status["state"],
-            "checkpoint": cfg.model.checkpoint, "method": cfg.method.kind, "seed": cfg.train.seed,
-            "train_size": cfg.task.train_size, **({"error": status["error"]} if status.get("error") else {})}
-
-
-def _write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
-                 memory: dict[int, dict[str, float | None]] | None = None,
-                 roles: dict[int, dict[str, Any]] | None = None) -> list[dict[str, Any]]:
-    records = [{**_record(i, cfg), **(roles or {}).get(i, {"role": "run"})} for i, cfg in enumerate(runs)]
-    for i, mem in (memory or {}).items():
-        records[i]["memory"] = mem
-    if is_main_process():  # under `accelerate launch` every process walks the sweep; one writes
-        atomic_write_json(folder / "sweep.json", {**meta, "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-                                                  "runs": records})
-    return records
-
-
 def _run_one(cfg: Config, start: dict[str, str], tag: str, log: Log, shown: set[str]) -> tuple[str, bool]:
     """Run (or skip, or resume) one run of the sweep; return its final state ('busy': another process holds
     it) and whether it ran."""
@@ -261,7 +225,7 @@ def run_sweep(
     def progress(now_states: dict[int, str], now_memory: dict[int, dict[str, float | None]]) -> None:
         states.update(now_states)
         memory.update(now_memory)
-        _write_index(folder, meta, runs, memory, roles)
+        write_index(folder, meta, runs, memory, roles)
 
     def phase(picked: list[int]) -> None:
         try:
@@ -272,7 +236,7 @@ def run_sweep(
 
                 run_on_cluster(cluster, runs, picked, start, log, progress)
         finally:  # a kill mid-run still leaves an up-to-date index
-            _write_index(folder, meta, runs, memory, roles)
+            write_index(folder, meta, runs, memory, roles)
 
     start = hash_data(runs + _expand(cfg)[0])  # once, before anything runs: every run must see these versions
     picked = _pick(len(trials), 0, shard)
@@ -303,7 +267,7 @@ def run_sweep(
     log(f"sweep {name}: {len(finals)} runs" + ("" if shard is None else f", shard {meta['shard']}: {len(mine)}"))
     phase(mine)
     picked += mine
-    records = _write_index(folder, meta, runs, memory, roles)
+    records = write_index(folder, meta, runs, memory, roles)
     failed = [i for i in picked if states.get(i) != "finished"]
     summary: dict[str, Any] = {"folder": str(folder), "runs": records, "picked": picked, "failed": failed,
                                "data_changed": changed_since(start), "tuning": tuning, "held": held}
@@ -355,5 +319,8 @@ def plan_sweep(cfg: Config, name: str, shard: tuple[int, int] | None, log: Log, 
         + ("" if shard is None else f"; shard {shard[0]}/{shard[1]}: {len(picked)}")
         + f"; sweep folder {sweep_folder(fitted.cfg, name)}")
     if any(a is not None for a in stand_in):
-        log("runs of a tuned arm are shown with the arm's own settings until its trials have chosen")
-    log_plan(picked, estimate_runs([runs[i] for i in picked], log=log, calibrate=calibrate), log)
+        log("role 'untuned': a tuned arm's run, shown with the arm's own settings until its trials have chosen "
+            "(the budget line above counts it at its dearest trial)")
+    roles = {i: f"trial {t.index}" for i, t in enumerate(trials)}
+    roles.update({len(trials) + n: "untuned" for n, a in enumerate(stand_in) if a is not None})
+    log_plan(picked, estimate_runs([runs[i] for i in picked], log=log, calibrate=calibrate), log, roles)

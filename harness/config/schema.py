@@ -174,6 +174,8 @@ class EvalConfig:
     extra: tuple[str, ...] = _doc("local folders of extra metrics (evaluate library), loaded by path", ())
     store_texts: bool = _doc("copy test texts into predictions.jsonl and the report; false = ids and labels "
                              "only (personal data)", True)
+    int8: bool = _doc("also score test with a dynamically quantised int8 copy (linear layers) and record its "
+                      "scores, agreement, speed and size beside the float model's; measured, not saved", False)
 
 
 @dataclass(frozen=True)

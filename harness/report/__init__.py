@@ -3,6 +3,7 @@
 | module | one idea |
 |---|---|
 | `run_report` | one run's report (report.md / report.html) |
+| `serving_blocks` | the run report's serving rows and int8 section |
 | `compare` | many runs -> one table: groups, mean ± sd, intervals, paired tests, cost |
 | `compare_files` | the comparison's files and terminal text |
 | `plots` | the figures |

@@ -45,6 +45,7 @@ from harness.models.backbones import position_limit
 from harness.report.run_report import write_run_report
 from harness.runs.claim import claim_launched
 from harness.runs.folders import environment_info, read_status, run_folder, write_status
+from harness.runs.serving import check_int8, measure_serving, try_int8
 from harness.train.checkpoints import Interrupted
 from harness.train.loop import set_threads, train
 from harness.train.memory import peak_rss_mb, reset_peak_rss
@@ -121,6 +122,8 @@ def _load_inputs(cfg: Config, resume_from: Path | None) -> tuple[TaskData, Metho
         if resume_from is not None:
             _check_same_data(resume_from, data)
         method = build_method(cfg.method.kind, cfg=cfg, data=data)
+        if cfg.eval.int8:
+            check_int8(method, cfg)
         tokenizer = getattr(method, "tokenizer", None)
         backbone = getattr(method, "backbone", None)
         audit = audit_data(data, max_length=cfg.train.max_length,
@@ -230,8 +233,12 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
                                   "metrics": result.best_metrics, "stopped_early": result.stopped_early}
             atomic_write_text(folder / "predictions.jsonl", _predictions(data.test, probs, data.label_names,
                                                                          texts=cfg.eval.store_texts))
-            atomic_write_json(folder / "metrics.json", metrics)
             _save_model(method, folder / "model")
+            metrics["cost"]["serving"] = measure_serving(method, test_items, batch_size=cfg.eval.batch_size,
+                                                         eval_seconds=eval_seconds, model_dir=folder / "model")
+            if cfg.eval.int8:
+                metrics["int8"] = try_int8(method, test_items, probs, cfg, data.test.labels, data.label_names)
+            atomic_write_json(folder / "metrics.json", metrics)
             atomic_write_json(folder / "method.json", method.describe())
     except Interrupted as exc:
         if main:

@@ -6,6 +6,7 @@
 | `serving_blocks` | the run report's serving rows and int8 section |
 | `compare` | many runs -> one table: groups, mean ± sd, intervals, paired tests, cost |
 | `compare_files` | the comparison's files and terminal text |
+| `compare_serving` | the comparison's serving means, table and summary sentence |
 | `plots` | the figures |
 | `render` | one document model rendered as Markdown or HTML |
 | `cautions` | the cautions printed wherever a verdict is read (reports, comparisons, sweep, compare, predict) |

@@ -86,6 +86,21 @@ def _as_linear(conv: Conv1D) -> nn.Linear:
     return linear
 
 
+def _plain_forward(root: nn.Module) -> int:
+    """Drop accelerate's mixed-precision wrapper from the copy's modules; returns how many had one.
+
+    Why: `accelerator.prepare` under train.bf16 replaces a model's `forward` by one that runs in bf16
+    autocast (and keeps the class's as `_original_forward`); the int8 kernels take float32 inputs.
+    """
+    found = 0
+    for module in root.modules():
+        if "_original_forward" in vars(module):
+            vars(module).pop("forward", None)  # the class's own forward again
+            del module._original_forward
+            found += 1
+    return found
+
+
 def _convert_conv1d(module: nn.Module) -> int:
     converted = 0
     for name, child in list(module.named_children()):
@@ -132,6 +147,7 @@ def int8_copy(modules: Mapping[str, nn.Module]) -> tuple[dict[str, nn.Module], d
 
     The modules are copied together, so one that is part of another (next_token's `lm` inside a LoRA
     wrapper) stays part of it. Facts: quantized_layers, converted_conv1d, merged_adapters,
+    bf16_autocast_removed (the float model scored under train.bf16's autocast, the copy in float32),
     quantized_weight_share (weights in quantised layers / all weights), float_state_bytes (the merged
     float copy) and state_bytes (the int8 copy), both as torch.save writes them.
     """
@@ -141,6 +157,7 @@ def int8_copy(modules: Mapping[str, nn.Module]) -> tuple[dict[str, nn.Module], d
                            "supported_engines is empty); int8 cannot run here")
     copied: dict[str, nn.Module] = copy.deepcopy(dict(modules))
     merged = sum(_unwrap(m) for m in copied.values())
+    autocast = sum(_plain_forward(m) for m in copied.values())
     converted = sum(_convert_conv1d(m) for m in copied.values())
     linear, total = linear_weights(copied)
     if linear == 0:
@@ -158,7 +175,7 @@ def int8_copy(modules: Mapping[str, nn.Module]) -> tuple[dict[str, nn.Module], d
     layers = sum(isinstance(m, QuantizedLinear) for name in roots for m in copied[name].modules())
     facts = {"scheme": "torch dynamic quantisation, int8 weights per output channel, activations per batch",
              "engine": torch.backends.quantized.engine, "quantized_layers": layers, "converted_conv1d": converted,
-             "merged_adapters": merged, "quantized_weight_share": linear / total if total else 0.0,
+             "merged_adapters": merged, "bf16_autocast_removed": autocast > 0, "quantized_weight_share": linear / total if total else 0.0,
              "float_state_bytes": float_bytes,
              "state_bytes": sum(state_bytes(copied[name]) for name in weighted)}
     return copied, facts

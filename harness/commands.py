@@ -162,11 +162,14 @@ def replay_command(run_dir: Path, out: Path | None = None) -> int:
 
 def cmd_predict(args: argparse.Namespace) -> int:
     """`predict RUN_DIR INPUT`: label new rows with a finished run's model."""
-    from harness.runs.predict import predict
+    from harness.runs.predict import label_rows
 
     out = args.out or args.input.with_name(args.input.stem + ".predictions.csv")
-    predict(args.run_dir, args.input, out)
+    done = label_rows(args.run_dir, args.input, out)
+    speed = "–" if done.rows_per_second is None else f"{done.rows_per_second:,.1f}"
     print(f"predictions written to {out}")
+    print(f"{done.rows} rows labelled in {done.seconds:.2f} s: {speed} rows/s (tokenising and scoring; "
+          "loading the model not counted)")
     print(SHORT_CAUTION)
     return 0
 

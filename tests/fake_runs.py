@@ -66,8 +66,13 @@ def write_run(root: Path, test: dict[str, Any], *, checkpoint: str = "asset:gt-a
               kind: str = "head", seed: int = 1, train_rows: int = 400, accuracy: float = 0.8,
               pred: np.ndarray | None = None, state: str = "finished", error: str | None = None,
               train_seconds: float = 60.0, trainable: int = 22_700_000, total: int = 22_700_000,
-              primary: str = "macro_f1", extra: dict[str, Any] | None = None) -> Path:
-    """One run folder under `root/<task>/<run-id>`; returns its path."""
+              primary: str = "macro_f1", extra: dict[str, Any] | None = None,
+              serving: dict[str, Any] | None = None, int8: dict[str, Any] | None = None) -> Path:
+    """One run folder under `root/<task>/<run-id>`; returns its path.
+
+    `serving` becomes cost["serving"] and `int8` the metrics' "int8" block; without them the run looks like
+    one from before serving was measured.
+    """
     method: dict[str, Any] = {"kind": kind}
     if kind == "head":
         method["pooling"] = "first"
@@ -121,6 +126,10 @@ def write_run(root: Path, test: dict[str, Any], *, checkpoint: str = "asset:gt-a
                        "train_examples_per_second": (2 * train_rows / train_seconds) if train_seconds else None,
                        "peak_rss_mb": 900.0 + 10 * seed, "trainable_parameters": trainable,
                        "total_parameters": total, "steps": steps}
+    if serving is not None:
+        metrics["cost"]["serving"] = serving
+    if int8 is not None:
+        metrics["int8"] = int8
     atomic_write_json(folder / "metrics.json", metrics)
     atomic_write_json(folder / "method.json", {"kind": kind, "pooling": method.get("pooling")})
     write_status(folder, "finished")

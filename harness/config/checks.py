@@ -71,6 +71,10 @@ def check_values(cfg: Config, where: Callable[[str], str]) -> None:
     need(ev.bootstrap >= 0, "eval.bootstrap", "0 or more", ev.bootstrap)
     need(0.5 <= ev.ci <= 0.999, "eval.ci", "between 0.5 and 0.999", ev.ci)
     need(ev.worst >= 0, "eval.worst", "0 or more", ev.worst)
+    if ev.int8 and not _quantized_engines():
+        raise SettingError("eval.int8", "this torch build has no quantised CPU engine (torch.backends.quantized."
+                           "supported_engines lists none), so no int8 copy can run here; set eval.int8: false",
+                           where=where("eval.int8"))
     _check_output(cfg.output, where)
     from harness.metrics.scores import METRICS  # late: metrics imports nothing from here
 
@@ -96,6 +100,13 @@ def check_values(cfg: Config, where: Callable[[str], str]) -> None:
                 raise exc.located(where(key)) from None
     if m.kind == "prompt" and m.lora is not None:
         raise HarnessError(f"{where('method.lora')}: method 'prompt' trains nothing; remove method.lora")
+
+
+def _quantized_engines() -> list[str]:
+    """The quantised CPU kernel libraries of this torch build (as harness.models.int8.quantized_engines)."""
+    import torch  # late: config loading stays free of torch unless a config asks for int8
+
+    return [e for e in torch.backends.quantized.supported_engines if e != "none"]
 
 
 def _check_output(output: str, where: Callable[[str], str]) -> None:

@@ -178,6 +178,8 @@ class EvalConfig:
     score_on: Literal["test", "dev"] = _doc(
         "split scored at the end of the run: test, or dev (tuning trials: the test split is never scored)", "test"
     )
+    int8: bool = _doc("also score test with a dynamically quantised int8 copy (linear layers) and record its "
+                      "scores, agreement, speed and size beside the float model's; measured, not saved", False)
 
 
 @dataclass(frozen=True)

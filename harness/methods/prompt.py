@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import logging
 import random
+import weakref
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -128,6 +129,7 @@ class PromptMethod(NextTokenMethod):
         for p in self.model.parameters():
             p.requires_grad_(False)
         self._p_cf: np.ndarray | None = None
+        self._p_cf_model: weakref.ref[Any] | None = None  # the module p_cf was computed with (not kept alive)
         self.demo_rows: list[str] = []
         if m.shots == 0:
             return
@@ -147,13 +149,18 @@ class PromptMethod(NextTokenMethod):
         return []
 
     def content_free(self, batch_size: int) -> np.ndarray:
-        """p_cf (K,): mean uncalibrated probabilities of the content-free inputs, computed once."""
-        if self._p_cf is None:
+        """p_cf (K,): mean uncalibrated probabilities of the content-free inputs, computed once per model.
+
+        Why per model: a copy of this method scoring with another module (the int8 copy of
+        harness.runs.serving) must calibrate with that module's own p_cf.
+        """
+        if self._p_cf is None or self._p_cf_model is None or self._p_cf_model() is not self.lm:
             pair = self.is_pair
             self._p_cf = content_free_probs(
                 lambda texts: NextTokenMethod.predict_proba(
                     self, self.encode([(t, t) if pair else t for t in texts], [-1] * len(texts)), batch_size)
             )
+            self._p_cf_model = weakref.ref(self.lm)
         return self._p_cf
 
     def predict_proba(self, items: Sequence[Encoded], batch_size: int) -> np.ndarray:

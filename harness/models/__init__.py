@@ -8,4 +8,5 @@
 | `cut` | a checkpoint cut to its first N layers, on disk or in memory |
 | `toy` | tiny random-weight checkpoints with a tokenizer trained on the sample tasks |
 | `quiet` | one switch for the library's progress bars and load reports |
+| `int8` | an int8 copy of a model for CPU serving (torch dynamic quantisation of its linear layers) |
 """

@@ -34,6 +34,7 @@ from harness.files import read_json
 from harness.metrics import stats
 from harness.metrics.scores import HEADLINE, METRICS, check_metric_name
 from harness.report.compare_files import write_comparison
+from harness.report.compare_serving import serving_sentence, serving_summary
 from harness.report.run_report import load_run
 from harness.runs.folders import read_status
 
@@ -43,7 +44,7 @@ ALPHA = 0.05
 RESAMPLES = 1000
 # Settings that never change what a run predicts (or are shown elsewhere): ignored when forming groups.
 _IGNORED = ("sweep", "output", "task.name", "task.train_size", "train.seed", "train.threads", "train.log_every",
-            "train.checkpoint_every", "eval.batch_size", "eval.worst", "eval.primary", "model.checkpoint",
+            "train.checkpoint_every", "eval.batch_size", "eval.worst", "eval.primary", "eval.int8", "model.checkpoint",
             "method.kind", "method.pooling", "method.template")
 
 
@@ -261,6 +262,7 @@ def _summaries(groups: dict[str, list[dict[str, Any]]], primary: str) -> list[di
             **stats.summarize_seeds([r["metrics"][primary] for r in runs]), "interval": pooled, "others": others,
             "train_seconds": float(np.mean(seconds)) if seconds else None,
             "trainable_parameters": cost[0].get("trainable_parameters"), "peak_rss_mb": max(peak) if peak else None,
+            **serving_summary(cost),
         })
     return rows
 
@@ -270,20 +272,26 @@ def _summary_line(rows: list[dict[str, Any]], display: str) -> str:
     head = f"Best: {best['group']} ({display} {best['mean']:.3f} ± {best['sd']:.3f} over {best['n']} seed{'s' if best['n'] != 1 else ''})."
     if len(rows) == 1:
         return head + " It is the only group, so there is nothing to test it against."
-    secs = best["train_seconds"]
+    (train, named), (serve, served) = _cheapest_to_train(rows, display), serving_sentence(rows, display, ALPHA)
+    caveat = " Not detecting a difference does not prove there is none." if named or served else ""
+    return head + train + serve + caveat
+
+
+def _cheapest_to_train(rows: list[dict[str, Any]], display: str) -> tuple[str, bool]:
+    """The training-time sentence, and whether it names a group the paired test cannot tell from the best."""
+    secs = rows[0]["train_seconds"]
     cheaper = [r for r in rows[1:] if r["train_seconds"] is not None and secs is not None and r["train_seconds"] < secs]
     if not cheaper:
-        return head + " No other group trains faster."
+        return " No other group trains faster.", False
     close = [r for r in cheaper if r["test"]["p_value"] >= ALPHA]
     if not close:
-        return head + (f" Every faster group is worse by more than the paired test puts down to chance "
-                       f"(p < {ALPHA}): saving training time here costs real {display}.")
+        return (f" Every faster group is worse by more than the paired test puts down to chance "
+                f"(p < {ALPHA}): saving training time here costs real {display}.", False)
     cheap = min(close, key=lambda r: r["train_seconds"])
     seconds = cheap["train_seconds"]
     ratio = "without training at all" if seconds <= 0 else f"in {secs / seconds:.1f}× less training time"
-    return head + (f" The cheapest group the paired test cannot tell apart from it is {cheap['group']} "
-                   f"({display} {cheap['mean']:.3f}, p = {cheap['test']['p_value']:.3f}), {ratio}. "
-                   "Not detecting a difference does not prove there is none.")
+    return (f" The cheapest group the paired test cannot tell apart from it is {cheap['group']} "
+            f"({display} {cheap['mean']:.3f}, p = {cheap['test']['p_value']:.3f}), {ratio}.", True)
 
 
 def _efficiency(rows: list[dict[str, Any]]) -> dict[str, Any] | None:

@@ -16,6 +16,7 @@ from harness.files import atomic_write_json, atomic_write_text
 from harness.metrics.scores import HEADLINE, METRICS
 from harness.report import plots
 from harness.report.cautions import CAUTIONS, SHORT_CAUTION
+from harness.report.compare_serving import SERVING_NOTES, serving_table
 from harness.report.render import (
     Block,
     Bullets,
@@ -31,6 +32,9 @@ from harness.report.tuning import FIGURE as TUNING_FIGURE
 from harness.report.tuning import tuning_blocks
 
 __all__ = ["terminal_text", "write_comparison"]
+
+
+_SERVING_KEYS = ("rows_per_second", "latency_p50_ms", "latency_p95_ms", "model_mb")  # seed means, CSV columns
 
 
 def _csv(header: list[str], rows: list[list[Any]]) -> str:
@@ -107,7 +111,8 @@ def _blocks(result: dict[str, Any], figures: dict[str, bytes]) -> list[Block]:
     if "metric_by_group.png" in figures:
         blocks.append(Image("metric_by_group.png", figures["metric_by_group.png"], "primary metric per group"))
     blocks += [Heading("Cost"), cost_table(result),
-               Image("quality_vs_cost.png", figures["quality_vs_cost.png"], "quality against training cost")]
+               Image("quality_vs_cost.png", figures["quality_vs_cost.png"], "quality against training cost"),
+               Heading("Serving"), serving_table(result), Bullets(SERVING_NOTES)]
     if "data_efficiency.png" in figures:
         blocks += [Heading("Data efficiency"),
                    Image("data_efficiency.png", figures["data_efficiency.png"], "data efficiency curve")]
@@ -161,13 +166,14 @@ def write_comparison(result: dict[str, Any], out_dir: Path) -> list[Path]:
     csv_rows = [[r["group"], r["checkpoint"], r["method"], r["detail"], r["train_examples"], r["n"],
                  " ".join(map(str, r["seeds"])), r["mean"], r["sd"], r["min"], r["max"], *r["interval"],
                  *(r["others"].get(m) for m in others), r["train_seconds"], r["trainable_parameters"],
-                 r["peak_rss_mb"], *([None] * len(tests) if r["test"] is None else [r["test"][k] for k in tests])]
+                 r["peak_rss_mb"], *([None] * len(tests) if r["test"] is None else [r["test"][k] for k in tests]),
+                 *(r.get(k) for k in _SERVING_KEYS)]
                 for r in rows]
     atomic_write_text(out_dir / "comparison.csv", _csv(
         ["group", "checkpoint", "method", "pooling_or_template", "train_examples", "seeds", "seed_list",
          f"{primary}_mean", f"{primary}_sd", f"{primary}_min", f"{primary}_max", "interval_lo", "interval_hi",
          *(f"{m}_mean" for m in others), "train_seconds", "trainable_parameters", "peak_rss_mb", "pairing",
-         "delta_vs_best", "delta_lo", "delta_hi", "p_value", "p_mcnemar_median"], csv_rows))
+         "delta_vs_best", "delta_lo", "delta_hi", "p_value", "p_mcnemar_median", *_SERVING_KEYS], csv_rows))
     write_documents(blocks, f"Comparison: {result['display']}", out_dir / "comparison.md",
                     out_dir / "comparison.html")
     atomic_write_json(out_dir / "comparison.json", {**result, "files": [str(f) for f in files]})
@@ -175,5 +181,6 @@ def write_comparison(result: dict[str, Any], out_dir: Path) -> list[Path]:
 
 
 def terminal_text(result: dict[str, Any]) -> str:
-    """What `tiltyard compare` prints: the quality and cost tables and the summary line, as Markdown."""
-    return to_markdown([quality_table(result), cost_table(result), Para(result["summary"]), Para(SHORT_CAUTION)])
+    """What `tiltyard compare` prints: the quality, cost and serving tables and the summary line, as Markdown."""
+    return to_markdown([quality_table(result), cost_table(result), serving_table(result), Para(result["summary"]),
+                        Para(SHORT_CAUTION)])

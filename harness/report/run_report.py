@@ -20,6 +20,7 @@ from harness.metrics.scores import HEADLINE, METRICS
 from harness.report import plots
 from harness.report.cautions import CAUTIONS
 from harness.report.render import Block, Bullets, Heading, Image, Para, fmt, table, write_documents
+from harness.report.serving_blocks import int8_blocks, serving_rows
 from harness.runs.folders import require_finished
 
 __all__ = ["build_run_report", "load_run", "read_jsonl", "report_blocks", "write_run_report"]
@@ -169,7 +170,7 @@ def build_run_report(run_dir: Path) -> dict[str, Any]:
         "reliability": m.get("reliability", []), "ece": m.get("metrics", {}).get("ece"),
         "curves": curves if trained else None,
         "cost": m.get("cost", {}), "worst": _worst(run, labels, int(_section(cfg, "eval").get("worst", 10))),
-        "weakest": weakest, "split": str(m.get("scored_on", "test")),
+        "weakest": weakest, "split": str(m.get("scored_on", "test")), "int8": m.get("int8"),
     }
 
 
@@ -259,7 +260,12 @@ def report_blocks(report: dict[str, Any]) -> list[Block]:
             ["training examples per second", _decimals(cost.get("train_examples_per_second"), 1)],
             ["optimiser steps", cost.get("steps")], ["peak memory (MB)", _decimals(cost.get("peak_rss_mb"), 0)],
             ["trainable parameters", fmt(trainable) + share], ["total parameters", total],
+            *serving_rows(cost.get("serving") or {}),
         ]),
+    ]
+    if report["int8"]:
+        blocks += int8_blocks(report["int8"], report["primary"], cost.get("serving") or {})
+    blocks += [
         Heading("Most confident mistakes"),
     ]
     if report["worst"] and any(w["text"] is not None for w in report["worst"]):

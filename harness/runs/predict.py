@@ -5,6 +5,8 @@ from __future__ import annotations
 import csv
 import io
 import json
+import time
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -17,7 +19,7 @@ from harness.methods.head_export import load_head_model
 from harness.methods.registry import load_builtin_methods
 from harness.runs.folders import require_finished
 
-__all__ = ["load_exported", "predict"]
+__all__ = ["Labelled", "label_rows", "load_exported", "predict"]
 
 
 def load_exported(run_dir: Path | str) -> Any:
@@ -56,8 +58,26 @@ def _saved_task(path: Path) -> dict[str, Any]:
     return task
 
 
+@dataclass(frozen=True)
+class Labelled:
+    """What `label_rows` did: where the CSV went, how many rows, and the seconds the model took on them."""
+
+    path: Path
+    rows: int
+    seconds: float  # tokenising and scoring the rows; loading the model and reading/writing files not counted
+
+    @property
+    def rows_per_second(self) -> float | None:
+        return self.rows / self.seconds if self.seconds > 0 else None
+
+
 def predict(run_dir: Path | str, input_path: Path | str, output_path: Path | str) -> Path:
     """Label new rows: the input's columns plus `predicted` and `prob_<label>` for every label (CSV out)."""
+    return label_rows(run_dir, input_path, output_path).path
+
+
+def label_rows(run_dir: Path | str, input_path: Path | str, output_path: Path | str) -> Labelled:
+    """`predict`, also saying how many rows the model labelled and how fast."""
     run_dir, input_path, output_path = Path(run_dir), Path(input_path), Path(output_path)
     exported = load_exported(run_dir)
     task = _saved_task(run_dir / "config.yaml")
@@ -74,7 +94,9 @@ def predict(run_dir: Path | str, input_path: Path | str, output_path: Path | str
                 raise HarnessError(f"{input_path} line {line}: no text in column {col!r} (the run's task.text)")
             cells.append(str(value))
         texts.append(tuple(cells) if len(cells) == 2 else cells[0])
+    started = time.perf_counter()
     probs = exported.predict_proba(texts)
+    seconds = time.perf_counter() - started
     names = list(exported.label_names)
     out = io.StringIO()
     fields = [*rows[0].keys(), "predicted", *(f"prob_{n}" for n in names)]
@@ -83,4 +105,4 @@ def predict(run_dir: Path | str, input_path: Path | str, output_path: Path | str
     for row, p in zip(rows, probs, strict=True):
         writer.writerow({**row, "predicted": names[int(p.argmax())], **{f"prob_{n}": f"{v:.6f}" for n, v in zip(names, p, strict=True)}})
     atomic_write_text(output_path, out.getvalue())
-    return output_path
+    return Labelled(output_path, len(rows), seconds)

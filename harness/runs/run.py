@@ -45,6 +45,7 @@ from harness.models.backbones import position_limit
 from harness.report.run_report import write_run_report
 from harness.runs.claim import claim_launched
 from harness.runs.folders import environment_info, read_status, run_folder, write_status
+from harness.runs.serving import check_int8, measure_serving, try_int8
 from harness.runs.twin import adopt_training, dev_twin, twin_cost
 from harness.train.checkpoints import Interrupted
 from harness.train.loop import set_threads, train
@@ -122,6 +123,8 @@ def _load_inputs(cfg: Config, resume_from: Path | None) -> tuple[TaskData, Metho
         if resume_from is not None:
             _check_same_data(resume_from, data)
         method = build_method(cfg.method.kind, cfg=cfg, data=data)
+        if cfg.eval.int8:
+            check_int8(method, cfg)
         tokenizer = getattr(method, "tokenizer", None)
         backbone = getattr(method, "backbone", None)
         audit = audit_data(data, max_length=cfg.train.max_length,
@@ -225,8 +228,8 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
                     shown_findings.add(finding)
         result = None
         if method.trains:
-            result = train(method, train_items, dev_items, data.label_names, cfg, folder, resume=resume or twin is not None,
-                           on_step=on_step, threads=threads)
+            result = train(method, train_items, dev_items, data.label_names, cfg, folder,
+                           resume=resume or twin is not None, on_step=on_step, threads=threads)
         scored, items = (data.dev, dev_items) if cfg.eval.score_on == "dev" else (data.test, test_items)
         started = time.perf_counter()
         probs = predict_sharded(lambda items: method.predict_proba(items, cfg.eval.batch_size), items)
@@ -242,8 +245,13 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
                                   "metrics": result.best_metrics, "stopped_early": result.stopped_early}
             atomic_write_text(folder / "predictions.jsonl", _predictions(scored, probs, data.label_names,
                                                                          texts=cfg.eval.store_texts))
-            atomic_write_json(folder / "metrics.json", metrics)
             _save_model(method, folder / "model")
+            if cfg.eval.score_on == "test":  # a tuning trial only chooses settings: nobody serves it
+                metrics["cost"]["serving"] = measure_serving(method, test_items, batch_size=cfg.eval.batch_size,
+                                                             eval_seconds=eval_seconds, model_dir=folder / "model")
+                if cfg.eval.int8:
+                    metrics["int8"] = try_int8(method, test_items, probs, cfg, data.test.labels, data.label_names)
+            atomic_write_json(folder / "metrics.json", metrics)
             atomic_write_json(folder / "method.json", method.describe())
     except Interrupted as exc:
         if main:

@@ -115,10 +115,14 @@ def _probs(folder: Path) -> tuple[list[str], np.ndarray]:
     return [r["id"] for r in rows], np.array([list(r["probs"].values()) for r in rows])
 
 
+# timings and memory differ from machine to machine; the saved model's size by a few bytes of its folder's path
+_TIMED = ("train_seconds", "peak_rss_mb", "rows_per_second", "latency_p50_ms", "latency_p95_ms", "model_mb")
+
+
 def _table(sweep: Path) -> dict[str, Any]:
     """The comparison's groups without what differs from machine to machine (timings and memory)."""
     groups = json.loads((sweep / "comparison.json").read_text())["groups"]
-    return {g["group"]: {k: v for k, v in g.items() if k not in ("train_seconds", "peak_rss_mb")} for g in groups}
+    return {g["group"]: {k: v for k, v in g.items() if k not in _TIMED} for g in groups}
 
 
 def _sigint_on_first_step(calls: list[str]) -> Any:

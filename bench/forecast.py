@@ -13,6 +13,7 @@ decoder runs does not fill the disk with checkpoints.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import shutil
 import tempfile
@@ -29,7 +30,7 @@ from harness.experiments.sweep import expand_sweep
 from harness.files import read_json
 from harness.runs.run import execute_run
 
-__all__ = ["TOLERANCE", "forecast_accuracy", "render_forecast", "within"]
+__all__ = ["TOLERANCE", "forecast_accuracy", "forecast_of_sweep", "render_forecast", "within"]
 
 TOLERANCE = 0.35  # a forecast within +-35 % of the measured wall time counts as right
 
@@ -73,6 +74,46 @@ def forecast_accuracy(config: Path, out: Path, *, overrides: Sequence[str] = (),
               "forecast_seconds": forecast_seconds, "runs": rows, "within": hits,
               "share_within": hits / len(rows) if rows else None,
               "total": {"forecast": forecast_total, "wall": sum(r["measured"]["wall"] for r in rows)}}
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "forecast_accuracy.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    (out / "forecast_accuracy.md").write_text(render_forecast(report), encoding="utf-8")
+    return report
+
+
+def forecast_of_sweep(sweep: Path, out: Path, *, log: Callable[[str], None] = print) -> dict[str, Any]:
+    """Forecast accuracy of a sweep that `tiltyard sweep` already ran (tuning trials included): every run its
+    sweep.json times (`wall_seconds`) is forecast afresh, as a new run, with this machine's speed measured
+    again into a fresh folder, and set against that wall time. A run that took over its trial's training
+    (harness.runs.twin) is forecast without training, as the sweep's budget does. Writes out/forecast_accuracy.*."""
+    info = machine_info()
+    index = read_json(sweep / "sweep.json")
+    timed = [r for r in index["runs"] if r.get("wall_seconds") and r.get("state") == "finished"]
+    scratch = Path(tempfile.mkdtemp(prefix="tiltyard-forecast-bench-"))
+    try:
+        # read from the run folders, placed in an empty output folder: forecast as runs not yet done
+        runs = [dataclasses.replace(load_config(Path(r["path"]) / "config.yaml"), output=str(scratch / "runs"))
+                for r in timed]
+        started = time.perf_counter()
+        forecasts = forecast_runs(runs, log=log, speed_folder=scratch / "speed")
+        forecast_seconds = time.perf_counter() - started
+    finally:
+        shutil.rmtree(scratch, ignore_errors=True)
+    rows = []
+    for record, run, f in zip(timed, runs, forecasts, strict=True):
+        if read_json(Path(record["path"]) / "status.json").get("training_from") and f.train_seconds is not None:
+            f = dataclasses.replace(f, train_seconds=0.0, basis=f.basis + "; training taken over from its trial")
+        cost = read_json(Path(record["path"]) / "metrics.json")["cost"]
+        if cost.get("training_from"):
+            cost = {**cost, "train_seconds": 0.0}  # the trial's seconds, recorded as the run's; not spent here
+        rows.append({**_row(run, f, float(record["wall_seconds"]), cost), "role": record.get("role", "run"),
+                     "others_cpu": None})
+    hits = sum(r["within"] for r in rows)
+    report = {"config": str(index.get("config")), "sweep": str(sweep), "overrides": [], "machine": info,
+              "tolerance": TOLERANCE, "forecast_seconds": forecast_seconds, "runs": rows, "within": hits,
+              "share_within": hits / len(rows) if rows else None,
+              "total": {"forecast": sum(r["forecast"]["total"] or 0.0 for r in rows),
+                        "wall": sum(r["measured"]["wall"] for r in rows)}}
+    info["load_average_end"] = machine_info()["load_average"]
     out.mkdir(parents=True, exist_ok=True)
     (out / "forecast_accuracy.json").write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     (out / "forecast_accuracy.md").write_text(render_forecast(report), encoding="utf-8")

@@ -4,6 +4,7 @@
     python scripts/benchmark.py --quick         # smoke run: a few hundred examples, 1 seed
     python scripts/benchmark.py --threads 1     # force the thread count of every contender
     python scripts/benchmark.py --resume        # after an interruption: keep the jobs that finished
+    python scripts/benchmark.py --forecast-sweep runs/ferry-bakeoff/sweeps/bakeoff   # forecasts vs a sweep run
     python scripts/benchmark.py --forecast      # forecast accuracy: the bake-off sweep forecast, then run
                                                 # (configs/bakeoff.yaml; writes docs/forecast_accuracy.md/.json)
 
@@ -88,12 +89,22 @@ def main() -> int:
     parser.add_argument("--forecast", nargs="?", const=str(REPO / "configs" / "bakeoff.yaml"), default=None,
                         metavar="CONFIG", help="measure forecast accuracy instead: forecast every run of CONFIG's "
                                                "sweep (default configs/bakeoff.yaml), run them, compare")
+    parser.add_argument("--forecast-sweep", default=None, metavar="SWEEP_FOLDER",
+                        help="measure forecast accuracy of a sweep already run by `tiltyard sweep` (its sweep.json "
+                             "times every run): forecast each afresh, compare with its wall time")
     parser.add_argument("--resume", action="store_true",
                         help="keep the results of jobs an interrupted run of the same command finished")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads for every contender (default: harness = physical cores, "
                              "reference = torch's default)")
     args = parser.parse_args()
+    if args.forecast_sweep is not None:
+        from bench.forecast import forecast_of_sweep, render_forecast
+
+        report = forecast_of_sweep(Path(args.forecast_sweep).resolve(), Path(args.out or REPO / "docs").resolve(),
+                                   log=lambda line: print(line, flush=True))
+        print(render_forecast(report))
+        return 0
     if args.forecast is not None:  # its own benchmark: no contenders, one sweep forecast and then run
         from bench.forecast import forecast_accuracy, render_forecast
 

@@ -16,6 +16,7 @@ from __future__ import annotations
 import itertools
 import json
 import logging
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -182,9 +183,10 @@ def _run_here(runs: Sequence[Config], picked: Sequence[int], start: dict[str, st
     tags = {i: f"[{n + 1}/{len(picked)}] #{i} {run_id(runs[i])}:" for n, i in enumerate(picked)}
     while order:
         i = order.pop(0)
+        began = time.perf_counter()
         states[i], ran = _run_one(runs[i], start, tags[i], log, shown)
-        if ran:
-            memory[i] = memory_after()
+        if ran:  # the wall time of the whole run (loading to report): what a forecast is checked against
+            memory[i] = {**memory_after(), "wall_seconds": round(time.perf_counter() - began, 2)}
         progress(states, memory)
         if states[i] == "busy":
             busy.append(i)

@@ -51,7 +51,11 @@ def write_index(folder: Path, meta: dict[str, Any], runs: Sequence[Config],
                  roles: dict[int, dict[str, Any]] | None = None) -> list[dict[str, Any]]:
     records = [{**_record(i, cfg), **(roles or {}).get(i, {"role": "run"})} for i, cfg in enumerate(runs)]
     for i, mem in (memory or {}).items():
+        mem = dict(mem)
+        wall = mem.pop("wall_seconds", None)  # the serial sweep times each run it ran
         records[i]["memory"] = mem
+        if wall is not None:
+            records[i]["wall_seconds"] = wall
     if is_main_process():  # under `accelerate launch` every process walks the sweep; one writes
         atomic_write_json(folder / "sweep.json", {**meta, "updated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
                                                   "runs": records})

@@ -128,16 +128,18 @@ def _ratio(measured: float, predicted: float) -> float:
 
 
 def _forecast(rid: str, name: str, work: RunWork, speed: Speed | None,
-              done: Sequence[tuple[RunWork, float, float]], unknown: str) -> Forecast:
+              done: Sequence[tuple[RunWork, float, float]], unknown: str, serves: bool = True) -> Forecast:
     trains = bool(work.train.step_tokens)
     flops = work.flops()
     if speed is not None:
         train, score = speed.train_seconds(work), speed.score_seconds(work)
+        # a run scored on test then times single rows for its serving cost (harness.runs.serving)
+        overhead = speed.overhead + (speed.serving_seconds() if serves else 0.0)
         if not done:
-            return Forecast(rid, train, score, speed.overhead, f"calibrated on this machine {speed.date}", flops, name)
+            return Forecast(rid, train, score, overhead, f"calibrated on this machine {speed.date}", flops, name)
         train *= _ratio(sum(t for _, t, _ in done), sum(speed.train_seconds(w) for w, _, _ in done))
         score *= _ratio(sum(s for _, _, s in done), sum(speed.score_seconds(w) for w, _, _ in done))
-        return Forecast(rid, train, score, speed.overhead,
+        return Forecast(rid, train, score, overhead,
                         f"from {len(done)} finished runs, calibrated {speed.date}", flops, name)
     if done:
         train_units, score_units = _units(work)
@@ -201,5 +203,6 @@ def forecast_runs(runs: Sequence[Config], *, log: Log, calibrate: bool = True,
         else:
             why = (f"unknown: measuring failed ({failed[fams[i]]})" if fams[i] in failed
                    else "unknown: not measured on this machine, no finished run like it")
-            out.append(_forecast(rid, name, works[i], speeds.get(fams[i]), done.get(fams[i], []), why))
+            out.append(_forecast(rid, name, works[i], speeds.get(fams[i]), done.get(fams[i], []), why,
+                                 serves=cfg.eval.score_on == "test"))
     return out

@@ -45,6 +45,7 @@ from harness.experiments.work import TRAIN_FLOPS_PER_TOKEN, RunWork, count_work,
 from harness.files import atomic_write_json, cache_dir, read_json
 from harness.methods.registry import Method
 from harness.runs import run as runner  # the module: execute_run looked up at call time
+from harness.runs.serving import LATENCY_BUDGET, LATENCY_ROWS, WARMUP_ROWS
 from harness.train.loop import resolve_threads
 
 __all__ = ["STEPS", "Speed", "SpeedCache", "cpu_seconds", "family_key", "family_name", "machine_fingerprint",
@@ -69,6 +70,11 @@ class Speed:
     first_step: float = 0.0  # seconds, once per run that trains
     per_eval: float = 0.0  # seconds per dev evaluation beyond its scoring
     others: float | None = None  # the share of this machine's CPU time other processes used meanwhile
+    row_latency: float = 0.0  # seconds to score one row alone (the small run's serving p50)
+
+    def serving_seconds(self) -> float:
+        """The single-row timing a run scored on test does for its serving cost (harness.runs.serving)."""
+        return min(LATENCY_BUDGET, (WARMUP_ROWS + LATENCY_ROWS) * self.row_latency)
 
     @property
     def date(self) -> str:
@@ -173,7 +179,9 @@ def _small(cfg: Config, output: Path) -> Config:
         rows = min(rows, cfg.task.max_rows)
     # eval_every far beyond the steps: no evaluation at epoch ends, only the one after the last step
     train = replace(t, epochs=float(STEPS), max_steps=STEPS, eval_every=10**9, patience=None, checkpoint_every=0)
-    return replace(cfg, task=replace(cfg.task, max_rows=rows), train=train, output=str(output))
+    # scored on test, whatever the run scores: a tuning trial's family must learn the single-row (serving) speed too
+    return replace(cfg, task=replace(cfg.task, max_rows=rows), train=train, output=str(output),
+                   eval=replace(cfg.eval, score_on="test"))
 
 
 @contextlib.contextmanager
@@ -227,7 +235,11 @@ def measure_speed(cfg: Config) -> Speed:
         work = count_work(small, method, *encode_run(method, data, small))  # token cache hits: no new tokenising
     score_rate = float(cost["eval_seconds"]) / max(work.test_flops(padded=True), 1.0)
     train_seconds = float(cost["train_seconds"])
-    speed = Speed(score_rate=score_rate, overhead=max(0.0, wall - train_seconds - float(cost["eval_seconds"])),
+    serving = cost.get("serving") or {}
+    latency = (serving.get("latency_p50_ms") or 0.0) / 1000.0
+    timed_rows = (WARMUP_ROWS + int(serving.get("latency_rows") or 0)) * latency  # the small run's own serving
+    speed = Speed(score_rate=score_rate, row_latency=latency,
+                  overhead=max(0.0, wall - train_seconds - float(cost["eval_seconds"]) - timed_rows),
                   measured=time.strftime("%Y-%m-%dT%H:%M:%S%z"), seconds=time.perf_counter() - started,
                   others=others_share(busy_before, busy_after, wall))
     if not method.trains or not stamps:

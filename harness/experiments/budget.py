@@ -107,14 +107,16 @@ def fit_budget(cfg: Config, budget: str | None, log: Log, planner: Planner,
     began = time.perf_counter()
     cost = sweep_cost(cfg, trials, forecast, planner)
     # the budget is wall time from here: measuring this machine's speed (once per family) spends some of it
-    limit = max(0.0, limit - (time.perf_counter() - began))
+    given, spent = limit, time.perf_counter() - began
+    limit = max(0.0, limit - spent)
+    said = f"budget {_minutes(given)} ({_minutes(limit)} left after {spent:.0f} s of forecasting)"
     first = f"forecast {_minutes(cost)} for the sweep as written"
     if cost <= limit:
-        log(f"budget {_minutes(limit)}: {first}; it fits")
+        log(f"{said}: {first}; it fits")
         return Fitted(cfg, trials, f"fits: {first}")
     if cfg.sweep.over_budget == "refuse":
         key = "sweep.tune.trials" if tune else "sweep.budget"
-        raise HarnessError(f"{key_location(cfg, key)}: {first}, over the budget of {_minutes(limit)} "
+        raise HarnessError(f"{key_location(cfg, key)}: {first}, over the budget of {_minutes(given)} "
                            f"({'--budget' if budget is not None else 'sweep.budget'}); lower it, or set "
                            "sweep.over_budget: trim to let the sweep cut trials, then seeds")
     steps: list[str] = []
@@ -132,5 +134,5 @@ def fit_budget(cfg: Config, budget: str | None, log: Log, planner: Planner,
                            f"{first}; even trimmed to {trials or 0} trials per arm and {seeds} seeds it needs "
                            f"{_minutes(cost)}; give a budget of at least {_minutes(cost * 1.05)} or a smaller sweep")
     note = f"trimmed to fit {_minutes(limit)}: {first}; " + "; ".join(steps)
-    log(f"budget {_minutes(limit)}: {note}")
+    log(f"{said}: {note}")
     return Fitted(cfg, trials, note)

@@ -152,6 +152,11 @@ def render_forecast(report: dict[str, Any]) -> str:
              "Forecast: train (with its dev evaluations) + scoring + overhead (loading, files, report); measured: "
              "the run's own train_seconds and eval_seconds (metrics.json) and the wall clock around its whole "
              "execute_run call; other = wall - train - scoring.", "",
+             *([f"The runs are those of the sweep in `{report['sweep']}` (tuning trials included), each timed by "
+                "the sweep itself (sweep.json `wall_seconds`: the whole run, loading to report); they were "
+                "forecast afterwards as new runs, with this machine's speed measured again. 'taken over': the "
+                "run took over its tuning trial's training, so neither forecast nor measurement counts it.", ""]
+               if report.get("sweep") else []),
              "Others' CPU: the share of the machine's CPU time other processes used during the run (the speed "
              "was measured with whatever they used then).", "",
              "| run | method | basis | forecast train / score / overhead = total s | measured train / score / other "

@@ -283,6 +283,7 @@ def _cost(method: Method, result: Any, eval_seconds: float) -> dict[str, Any]:
         "train_seconds": result.train_seconds if result else 0.0,
         "eval_seconds": eval_seconds,
         "train_examples_per_second": result.examples_per_second if result else None,
+        "train_dev_seconds": result.dev_seconds if result else 0.0,  # of train_seconds: dev scoring, checkpoints
         "peak_rss_mb": peak_rss_mb(),
         "trainable_parameters": trainable if method.trains else 0,
         "total_parameters": total,

@@ -57,4 +57,5 @@ def twin_cost(twin: Path) -> dict[str, Any]:
     """The training cost the twin measured, as the run's own: seconds, steps, examples/s, and whose it was."""
     cost = read_json(twin / "metrics.json").get("cost", {})
     return {"train_seconds": cost.get("train_seconds", 0.0), "steps": cost.get("steps", 0),
-            "train_examples_per_second": cost.get("train_examples_per_second"), "training_from": twin.name}
+            "train_examples_per_second": cost.get("train_examples_per_second"),
+            "train_dev_seconds": cost.get("train_dev_seconds", 0.0), "training_from": twin.name}

@@ -46,6 +46,7 @@ class TrainResult:
     best_value: float | None
     best_metrics: dict[str, Any] | None
     stopped_early: bool
+    dev_seconds: float = 0.0  # of train_seconds: dev evaluations and checkpoint writes
 
 
 def seed_everything(seed: int) -> None:
@@ -253,14 +254,16 @@ def train(method: Method, train_items: Sequence[Encoded], dev_items: Sequence[En
     state = ckpt.restore(model, optimizer, scheduler) if resume else TrainState()
     log = _Log(folder / "log.jsonl", keep_until=state.step if resume else 0)
     bar = tqdm(total=total, initial=state.step, disable=not sys.stderr.isatty(), desc="train", unit="step")
-    started, seen = time.perf_counter(), 0
+    started, seen, aside = time.perf_counter(), 0, [0.0]  # aside: seconds of dev evaluation and checkpoints
 
     def evaluate_and_checkpoint() -> None:
+        began = time.perf_counter()
         metrics = evaluate(method, dev_items, label_names, cfg)
         if update_best(state, metrics, cfg):
             ckpt.save_best(model)
         log.write(step=state.step, epoch=state.epoch, dev=metrics["metrics"], best_step=state.best_step)
         ckpt.save(model, optimizer, scheduler, state)
+        aside[0] += time.perf_counter() - began
 
     with interrupt_guard() as interrupted:
         while state.step < total and not state.stopped_early:
@@ -311,4 +314,4 @@ def train(method: Method, train_items: Sequence[Encoded], dev_items: Sequence[En
     ckpt.load_best(model)
     seconds = time.perf_counter() - started
     return TrainResult(state.step, seconds, seen / max(seconds, 1e-9), state.best_step,
-                       state.best_value, state.best_metrics, state.stopped_early)
+                       state.best_value, state.best_metrics, state.stopped_early, dev_seconds=aside[0])

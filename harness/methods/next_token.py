@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 import torch
+import torch.nn.functional as F
 
 from harness.config import Config, config_from_dict, config_to_dict
 from harness.data.task import Split, TaskData
@@ -35,6 +36,7 @@ from harness.methods.rank_scoring import (
     masked_lm_loss,
     pad_ids,
     seq2seq_rank_scores,
+    takes_argument,
 )
 from harness.methods.registry import Encoded, register_method
 from harness.methods.templates import (
@@ -112,6 +114,9 @@ class NextTokenMethod:
         self.seqs, self.owner = self.labels.variants(m.multi_word)
         self.lm = self._adapt(m)
         self.demos = ""
+        # Models whose forward takes a boolean (batch, seq) `logits_to_keep` (transformers' decoders do) run
+        # the output layer on the label-word positions only in `loss`; the others on every position.
+        self._keeps_positions = not self.seq2seq and takes_argument(self.lm, "logits_to_keep")
 
     def _adapt(self, m: Any) -> Any:
         """Apply method.freeze / method.lora; return the module to call for forward passes."""
@@ -170,8 +175,18 @@ class NextTokenMethod:
         if self.seq2seq:
             return self.lm(input_ids=batch["input_ids"], attention_mask=batch["attention_mask"],
                            labels=batch["target_ids"]).loss
-        logits = self.lm(input_ids=batch["input_ids"], attention_mask=batch["attention_mask"]).logits
-        return masked_lm_loss(logits, batch["target_ids"])
+        targets = batch["target_ids"]
+        if not self._keeps_positions:
+            logits = self.lm(input_ids=batch["input_ids"], attention_mask=batch["attention_mask"]).logits
+            return masked_lm_loss(logits, targets)
+        # The output layer only where a label-word token is predicted: position t scores token t+1, and every
+        # prompt position has no target. Why: vocabulary x hidden per position was a fifth of SmolLM2-135M's
+        # forward work, and its (batch, seq, vocab) logits the largest activation (scripts/benchmark.py).
+        keep = torch.zeros_like(targets, dtype=torch.bool)
+        keep[:, :-1] = targets[:, 1:] != IGNORE_INDEX
+        logits = self.lm(input_ids=batch["input_ids"], attention_mask=batch["attention_mask"],
+                         logits_to_keep=keep).logits  # (kept positions, vocab)
+        return F.cross_entropy(logits.float(), targets[:, 1:][keep[:, :-1]])
 
     def label_scores(self, prompts: Sequence[Sequence[int]], batch_size: int) -> torch.Tensor:
         """(n, K) label scores (sum or mean log-probs, words averaged) of prompt token sequences."""

@@ -25,7 +25,7 @@ from transformers.modeling_outputs import BaseModelOutput
 from harness.methods.batches import pad_batch
 
 __all__ = ["IGNORE_INDEX", "decoder_rank_scores", "label_log_scores", "masked_lm_loss", "pad_ids",
-           "seq2seq_rank_scores"]
+           "seq2seq_rank_scores", "takes_argument"]
 
 IGNORE_INDEX = -100  # torch cross_entropy's default ignore_index
 
@@ -47,17 +47,21 @@ def pad_ids(seqs: Sequence[Sequence[int]], value: int, *, left: bool = False) ->
     return batch["input_ids"], batch["attention_mask"]
 
 
+def takes_argument(model: Any, name: str) -> bool:
+    """Whether `model.forward` names the keyword argument `name` (False when its signature cannot be read)."""
+    try:
+        return name in inspect.signature(model.forward).parameters
+    except (TypeError, ValueError):  # a forward without a readable signature
+        return False
+
+
 def _last_position_only(model: Any) -> dict[str, Any]:
     """`logits_to_keep=1` where the model takes it: the output layer then runs on the prompts' last column only.
 
     Why: the prompt pass needs one distribution per prompt, and the output layer over every position
     (vocabulary x hidden per token, a fifth of a small decoder's weights) is wasted work.
     """
-    try:
-        takes = "logits_to_keep" in inspect.signature(model.forward).parameters
-    except (TypeError, ValueError):  # a forward without a readable signature
-        takes = False
-    return {"logits_to_keep": 1} if takes else {}
+    return {"logits_to_keep": 1} if takes_argument(model, "logits_to_keep") else {}
 
 
 @torch.inference_mode()  # like the head evaluation pass: no autograd bookkeeping at all

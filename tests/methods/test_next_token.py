@@ -94,6 +94,27 @@ def test_masked_loss_equals_hand_cross_entropy_over_label_words(toy_paths: dict[
     assert len(gold) == sum(len(m.labels.ids[y][0]) for y in [0, 1, 2, 3])
 
 
+def test_label_positions_only_loss_and_gradients_equal_the_full_output_layer(toy_paths: dict[str, Path]) -> None:
+    # The output layer run on the label-word positions only (a boolean `logits_to_keep`, which transformers'
+    # decoders take) must give the loss and gradients of the full (batch, seq, vocab) logits.
+    fresh = backbone(toy_paths["decoder"])
+    names = ["lost_item", "refund", "accessibility", "praise"]
+    m = build_method("next_token", cfg=make_cfg(toy_paths["decoder"]), data=make_data(names), backbone=fresh)
+    assert m._keeps_positions  # GPT-2's forward takes logits_to_keep: the short path is the one under test
+    batch = m.collate(m.encode(TEXTS, [0, 1, 2, 3]))
+    results = []
+    for keeps in (True, False):
+        m._keeps_positions = keeps
+        fresh.model.zero_grad()
+        loss = m.loss(batch)
+        loss.backward()
+        results.append((loss.detach(), [p.grad.clone() for p in fresh.model.parameters() if p.grad is not None]))
+    (short, short_grads), (full, full_grads) = results
+    assert torch.allclose(short, full, atol=1e-6)
+    assert len(short_grads) == len(full_grads) > 0
+    assert all(torch.allclose(a, b, atol=1e-6) for a, b in zip(short_grads, full_grads, strict=True))
+
+
 def test_masked_loss_ignores_what_the_prompt_positions_predict(toy_paths: dict[str, Path], dec: Backbone) -> None:
     m = build_method("next_token", cfg=make_cfg(toy_paths["decoder"]), data=make_data(["lost_item", "refund"]),
                      backbone=dec)

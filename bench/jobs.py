@@ -1,12 +1,20 @@
 """The benchmark's training contenders, each run as `python -m bench.jobs JOB.json RESULT.json`.
 
 - `harness`: one `harness.runs.run.execute_run` of the `head` method, exactly as `tiltyard run` does it.
-- `reference`: the same checkpoint, data, epochs, batch size, learning rate and max length, trained
+- `trainer_fp32`: the same checkpoint, data, epochs, batch size, learning rate and max length, trained
   the way the transformers documentation teaches (its text-classification task guide and the
   `Trainer` pages): `AutoModelForSequenceClassification`, `DataCollatorWithPadding`, `Trainer`
   with `TrainingArguments(use_cpu=True, ...)` and every other argument at its default (random
   batches, the library's default optimizer and schedule).
-- `ablation` (bench.ablate) and `scoring` (bench.scoring) live in their own modules.
+- `trainer_bf16`: the same Trainer at its own best CPU settings: `bf16=True`,
+  `train_sampling_strategy="group_by_length"`, `save_strategy="no"`.
+- `plain_fp32`, `plain_bf16`: a careful hand-written PyTorch loop (bench.plain).
+- `ablation` (bench.ablate) and `scoring` (bench.scoring) live in their own modules; `memory`
+  (bench.memory) measures the bake-off arms' peak memory.
+
+Throughput is counted alike for every contender: training examples seen / seconds of training,
+evaluation and checkpoint writes excluded (the harness's dev scoring and checkpoints inside its
+training call are recorded as `cost.train_dev_seconds` and taken out).
 
 Every job reports its own peak resident memory (getrusage ru_maxrss): one process per job keeps
 the peaks of different contenders apart. Run by scripts/benchmark.py, never by tests.
@@ -22,7 +30,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-__all__ = ["JOBS", "build_config", "main", "token_lengths"]
+__all__ = ["CONTENDERS", "JOBS", "build_config", "main", "token_lengths"]
 
 
 def _set_dotted(data: dict[str, Any], key: str, value: Any) -> None:
@@ -82,7 +90,7 @@ def _ablation(job: dict[str, Any]) -> Any:
 
 
 def run_harness(job: dict[str, Any]) -> dict[str, Any]:
-    """One harness `head` run; the throughput is the run's own `cost.train_examples_per_second`."""
+    """One harness `head` run; throughput = examples seen / (training call - its dev scoring and checkpoints)."""
     import torch
     from transformers import AutoTokenizer
 
@@ -108,8 +116,10 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
                                width=lambda n: batch_width(n, t.max_length, int(job.get("pad_multiple", PAD_MULTIPLE))))
                  for e in range(int(t.epochs)))
     cost = metrics["cost"]
-    return {"contender": "harness", "examples_per_second": cost["train_examples_per_second"],
-            "train_seconds": cost["train_seconds"], "eval_seconds": cost["eval_seconds"],
+    seconds = cost["train_seconds"] - cost.get("train_dev_seconds", 0.0)  # training alone, as for every contender
+    return {"contender": "harness", "examples_per_second": len(data.train) * int(t.epochs) / seconds,
+            "train_seconds": seconds, "train_call_seconds": cost["train_seconds"],
+            "train_dev_seconds": cost.get("train_dev_seconds"), "eval_seconds": cost["eval_seconds"],
             "accuracy": metrics["metrics"]["accuracy"], "macro_f1": metrics["metrics"]["macro_f1"],
             "steps": cost["steps"], "train_examples": len(data.train), "test_examples": len(data.test),
             "lengths": lengths, "real_tokens": sum(lengths) * int(t.epochs), "padded_tokens": padded,
@@ -124,19 +134,10 @@ def _loaded_facts(cfg: Any) -> dict[str, int]:
     return _model_facts(load_backbone(cfg.model, for_lm=False).model)
 
 
-def run_reference(job: dict[str, Any]) -> dict[str, Any]:
-    """The documented transformers recipe on the same data; throughput = examples seen / trainer.train() time."""
-    import numpy as np
+def _library_setup(job: dict[str, Any]) -> tuple[Any, Any, Any, Any]:
+    """Config, data (the very splits the harness run sees), tokenizer and a fresh classifier, the library's way."""
     import torch
-    from datasets import Dataset
-    from sklearn.metrics import accuracy_score, f1_score
-    from transformers import (
-        AutoModelForSequenceClassification,
-        AutoTokenizer,
-        DataCollatorWithPadding,
-        Trainer,
-        TrainingArguments,
-    )
+    from transformers import AutoModelForSequenceClassification, AutoTokenizer
     from transformers.utils import logging as hf_logging
 
     from harness.data.task import load_task
@@ -146,13 +147,26 @@ def run_reference(job: dict[str, Any]) -> dict[str, Any]:
     if job.get("threads"):
         torch.set_num_threads(int(job["threads"]))  # the same thread count as the harness run, when one is forced
     cfg = build_config(job, Path(tempfile.gettempdir()))
-    data = load_task(cfg.task, seed=cfg.train.seed)  # the very splits (and train subsample) the harness run sees
+    data = load_task(cfg.task, seed=cfg.train.seed)
     source, _ = resolve_source(cfg.model.checkpoint)
     tokenizer = AutoTokenizer.from_pretrained(str(source))
+    torch.manual_seed(cfg.train.seed)  # the head's initial weights follow the seed
     model = AutoModelForSequenceClassification.from_pretrained(str(source), num_labels=len(data.label_names))
     if tokenizer.pad_token is None:  # the documented fix for decoders without a pad token
         tokenizer.pad_token = tokenizer.eos_token
     model.config.pad_token_id = tokenizer.pad_token_id
+    return cfg, data, tokenizer, model
+
+
+def run_trainer(job: dict[str, Any]) -> dict[str, Any]:
+    """The documented Trainer recipe (fp32 defaults, or bf16 + length groups); throughput over trainer.train()."""
+    import numpy as np
+    import torch
+    from datasets import Dataset
+    from sklearn.metrics import accuracy_score, f1_score
+    from transformers import DataCollatorWithPadding, Trainer, TrainingArguments
+
+    cfg, data, tokenizer, model = _library_setup(job)
 
     def dataset(split: Any) -> Any:
         raw = Dataset.from_dict({"text": list(split.texts), "label": list(split.labels)})
@@ -168,10 +182,12 @@ def run_reference(job: dict[str, Any]) -> dict[str, Any]:
         shapes.append(tuple(batch["input_ids"].shape))  # type: ignore[arg-type]
         return batch
 
+    best = {"bf16": True, "train_sampling_strategy": "group_by_length", "save_strategy": "no"}
     with tempfile.TemporaryDirectory(prefix="bench-ref-") as out:
         args = TrainingArguments(output_dir=out, use_cpu=True, num_train_epochs=cfg.train.epochs,
                                  per_device_train_batch_size=cfg.train.batch_size,
-                                 learning_rate=cfg.train.learning_rate, seed=cfg.train.seed, disable_tqdm=True)
+                                 learning_rate=cfg.train.learning_rate, seed=cfg.train.seed, disable_tqdm=True,
+                                 **(best if job["kind"] == "trainer_bf16" else {}))
         trainer = Trainer(model=model, args=args, train_dataset=train_set, processing_class=tokenizer,
                           data_collator=counting_collator)
         started = time.perf_counter()
@@ -181,12 +197,24 @@ def run_reference(job: dict[str, Any]) -> dict[str, Any]:
         predicted = np.asarray(trainer.predict(test_set).predictions).argmax(-1)
     lengths = [len(x) for x in train_set["input_ids"]]
     seen = len(data.train) * cfg.train.epochs
-    return {"contender": "reference", "examples_per_second": seen / seconds, "train_seconds": seconds,
+    return {"contender": job["kind"], "examples_per_second": seen / seconds, "train_seconds": seconds,
             "accuracy": float(accuracy_score(data.test.labels, predicted)),
             "macro_f1": float(f1_score(data.test.labels, predicted, average="macro")),
             "steps": len(train_shapes), "train_examples": len(data.train), "test_examples": len(data.test),
             "lengths": lengths, "real_tokens": sum(lengths) * int(cfg.train.epochs),
             "padded_tokens": sum(b * s for b, s in train_shapes), "optimizer": str(args.optim),
+            "torch_threads": torch.get_num_threads(), "model": _model_facts(model.base_model)}
+
+
+def run_plain_loop(job: dict[str, Any]) -> dict[str, Any]:
+    """The careful hand-written loop of bench.plain, in job["precision"]."""
+    import torch
+
+    from bench.plain import run_plain
+
+    cfg, data, tokenizer, model = _library_setup(job)
+    result = run_plain(job, cfg, data, tokenizer, model)
+    return {"contender": job["kind"], **result, "train_examples": len(data.train), "test_examples": len(data.test),
             "torch_threads": torch.get_num_threads(), "model": _model_facts(model.base_model)}
 
 
@@ -202,7 +230,16 @@ def _run_scoring(job: dict[str, Any]) -> dict[str, Any]:
     return run_scoring(job)
 
 
-JOBS = {"harness": run_harness, "reference": run_reference, "ablation": _run_ablation, "scoring": _run_scoring}
+def _run_memory(job: dict[str, Any]) -> dict[str, Any]:
+    from bench.memory import run_memory
+
+    return run_memory(job)
+
+
+JOBS = {"harness": run_harness, "trainer_fp32": run_trainer, "trainer_bf16": run_trainer,
+        "plain_fp32": run_plain_loop, "plain_bf16": run_plain_loop, "ablation": _run_ablation,
+        "scoring": _run_scoring, "memory": _run_memory}
+CONTENDERS = ("harness", "trainer_fp32", "trainer_bf16", "plain_fp32", "plain_bf16")
 
 
 def main(argv: list[str]) -> int:

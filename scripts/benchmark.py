@@ -1,15 +1,19 @@
-"""Speed benchmark: the harness against the transformers documentation's recipe, scoring, utilisation, memory.
+"""Speed benchmark: the harness against the library's Trainer and a careful plain loop; scoring, utilisation, memory.
 
     python scripts/benchmark.py                 # full: 2,000 train / ~1,000 test, 2 epochs, 3 seeds
     python scripts/benchmark.py --quick         # smoke run: a few hundred examples, 1 seed
     python scripts/benchmark.py --threads 1     # force the thread count of every contender
     python scripts/benchmark.py --resume        # after an interruption: keep the jobs that finished
+    python scripts/benchmark.py --only training,memory   # some groups only (training, memory, scoring,
+                                                # ablation, memory-ablations; default: all but the last)
     python scripts/benchmark.py --forecast-sweep runs/ferry-bakeoff/sweeps/bakeoff   # forecasts vs a sweep run
     python scripts/benchmark.py --forecast      # forecast accuracy: the bake-off sweep forecast, then run
                                                 # (configs/bakeoff.yaml; writes docs/forecast_accuracy.md/.json)
 
-Contenders run one after another in fresh subprocesses (so peak memory is per contender),
-alternating A B / B A from one seed to the next so that machine drift hits both alike. Writes
+Contenders (bench.jobs.CONTENDERS) run one after another in fresh subprocesses (so peak memory is
+per contender), their order rotated by one place from one seed to the next so that machine drift
+hits every contender alike. Throughput counts training alone for all of them (examples seen /
+seconds of training; evaluation and checkpoint writes excluded). Writes
 bench.json (every raw number) and bench.md (the tables) to --out (default bench_out/).
 """
 
@@ -26,6 +30,7 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 from bench.flops import machine_info, matmul_flops_per_second, run_job  # noqa: E402
+from bench.jobs import CONTENDERS  # noqa: E402
 from bench.report import render_markdown, summarise  # noqa: E402
 
 # The two packaged data sets, split as configs/sms_spam_minilm.yaml and configs/question_types_minilm.yaml do.
@@ -46,7 +51,7 @@ QUICK: dict[str, Any] = {"train_size": 160, "max_rows": 160, "epochs": 1, "seeds
 
 
 def training_jobs(plan: dict[str, Any], threads: int | None, decoder_folder: Path) -> list[dict[str, Any]]:
-    """Harness and reference runs of every model, task and seed; the order flips from one seed to the next."""
+    """Every contender on every model, task and seed; the contender order rotates by one from one seed to the next."""
     jobs = []
     dec = plan["decoder"]
     models = [("minilm-l6", "asset:minilm-l6", plan["train_size"], plan["max_rows"], plan["epochs"]),
@@ -58,10 +63,24 @@ def training_jobs(plan: dict[str, Any], threads: int | None, decoder_folder: Pat
                 common = {"model": model, "task_name": task, "task": {**split, "train_size": size, "max_rows": rows},
                           "checkpoint": checkpoint, "epochs": epochs, "batch_size": 16, "learning_rate": 1e-4,
                           "max_length": max_length, "seed": seed, "threads": threads}
-                pair = [{**common, "kind": "harness", "settings": HARNESS_SETTINGS}, {**common, "kind": "reference"}]
-                for job in pair if i % 2 == 0 else pair[::-1]:
-                    jobs.append({**job, "id": f"{job['kind']}-{model}-{task}-s{seed}"})
+                turn = i % len(CONTENDERS)
+                for kind in CONTENDERS[turn:] + CONTENDERS[:turn]:
+                    extra = {"settings": HARNESS_SETTINGS} if kind == "harness" else {}
+                    jobs.append({**common, "kind": kind, **extra, "id": f"{kind}-{model}-{task}-s{seed}"})
     return jobs
+
+
+def run_memory_jobs(threads: int | None) -> list[dict[str, Any]]:
+    """Whole runs as users launch them (bench.memory): the bake-off's SmolLM2 arms, a MiniLM head at the defaults."""
+    from bench.memory import MEMORY_RUNS
+
+    task = {**TASKS["sms-spam"][0], "train_size": FULL["train_size"]}
+    return [{"kind": "memory", "id": f"memory-run-{i}", "memory_run": name, "task": task, "threads": threads}
+            for i, name in enumerate(MEMORY_RUNS, 1)]
+
+
+GROUPS = ("training", "memory", "scoring", "ablation", "memory-ablations")
+DEFAULT_GROUPS = GROUPS[:4]
 
 
 # Memory ablations: harness runs on sms-spam with one choice undone or one setting added, each in its own
@@ -77,6 +96,7 @@ MEMORY_VARIANTS: dict[str, tuple[dict[str, Any], bool]] = {
 def memory_jobs(jobs: list[dict[str, Any]]) -> list[dict[str, Any]]:
     """Copies of the MiniLM sms-spam harness jobs (the first seed, or every seed), each with one MEMORY_VARIANTS patch."""
     bases = [j for j in jobs if j["kind"] == "harness" and j["model"] == "minilm-l6" and j["task_name"] == "sms-spam"]
+    # (the base runs are part of the training group: memory-ablations adds them when training is not chosen)
     return [{**base, **patch, "kind": "harness", "memory_variant": name, "id": f"memory-{i}-{base['id']}"}
             for i, (name, (patch, every_seed)) in enumerate(MEMORY_VARIANTS.items(), 1)
             for base in (bases if every_seed else bases[:1])]
@@ -94,6 +114,8 @@ def main() -> int:
                              "times every run): forecast each afresh, compare with its wall time")
     parser.add_argument("--resume", action="store_true",
                         help="keep the results of jobs an interrupted run of the same command finished")
+    parser.add_argument("--only", default=",".join(DEFAULT_GROUPS), metavar="GROUPS",
+                        help=f"comma-separated job groups: {', '.join(GROUPS)} (default: all but memory-ablations)")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads for every contender (default: harness = physical cores, "
                              "reference = torch's default)")
@@ -113,6 +135,10 @@ def main() -> int:
                                    log=lambda line: print(line, flush=True))
         print(render_forecast(report))
         return 0
+    groups = [g.strip() for g in args.only.split(",") if g.strip()]
+    unknown = sorted(set(groups) - set(GROUPS))
+    if unknown or not groups:
+        parser.error(f"--only: unknown group {', '.join(unknown) or '(none given)'}; choose from {', '.join(GROUPS)}")
     plan = QUICK if args.quick else FULL
     out = Path(args.out or REPO / "bench_out").resolve()
     jobs_dir = out / "jobs"
@@ -120,14 +146,14 @@ def main() -> int:
 
     import torch
 
-    from harness.models.assets import prepare
+    from harness.models.assets import prepare, resolve_checkpoint
     from harness.models.cut import cut_checkpoint
     from harness.train.loop import set_threads
 
     set_threads(args.threads)  # the matmul peak is measured on the threads the harness would use
     info = machine_info()
     prepare(["minilm-l6", "smollm2-135m", "sms-spam", "question-types"])  # convert once, not per job
-    decoder = cut_checkpoint("smollm2-135m", plan["decoder"]["layers"],
+    decoder = cut_checkpoint(resolve_checkpoint("smollm2-135m"), plan["decoder"]["layers"],
                              out / "checkpoints" / f"smollm2-135m-{plan['decoder']['layers']}layers")
     matmul = [matmul_flops_per_second()]
     earlier = out / "bench.json"
@@ -136,7 +162,8 @@ def main() -> int:
     print(f"machine: {info['cpu_model']}, {info['physical_cores']} cores, torch threads {torch.get_num_threads()}, "
           f"load {info['load_average']}; fp32 matmul {matmul[0] / 1e9:.1f} GFLOP/s", flush=True)
 
-    jobs = training_jobs(plan, args.threads, decoder)
+    every = training_jobs(plan, args.threads, decoder)
+    jobs = every if "training" in groups else []
     ablation = {"kind": "ablation", "id": "ablation-minilm-sms-spam", "task_name": "sms-spam",
                 "task": {**TASKS["sms-spam"][0], "train_size": max(plan["train_size"], 400), "max_rows": None},
                 "checkpoint": "asset:minilm-l6", "epochs": 1, "batch_size": 16, "learning_rate": 1e-4,
@@ -145,14 +172,22 @@ def main() -> int:
     scoring = {"kind": "scoring", "id": "scoring-smollm2-135m", "checkpoint": "asset:smollm2-135m",
                "task": {**TASKS["question-types"][0]}, "batch_size": 32, "threads": args.threads,
                **plan["scoring"]}
-    jobs += [*memory_jobs(jobs), ablation, scoring]
+    if "memory" in groups:
+        jobs += run_memory_jobs(args.threads)
+    if "memory-ablations" in groups:
+        variants = memory_jobs(every)
+        bases = {v["id"].split("-", 2)[2] for v in variants}
+        jobs += [j for j in every if j["id"] in bases and j not in jobs] + variants
+    jobs += [job for group, job in (("ablation", ablation), ("scoring", scoring)) if group in groups]
     results = []
     for n, job in enumerate(jobs, 1):
         print(f"[{n}/{len(jobs)}] {job['id']} ...", end=" ", flush=True)
         result = run_job(job, jobs_dir, reuse=args.resume)
         results.append({"job": job, "result": result})
         shown = result.get("error") or (f"{result['examples_per_second']:.1f} ex/s, acc {result['accuracy']:.4f}, "
-                                        f"peak {result['peak_rss_mb']:.0f} MB" if "accuracy" in result else "done")
+                                        f"peak {result['peak_rss_mb']:.0f} MB" if "examples_per_second" in result
+                                        else f"peak {result['peak_rss_mb']:.0f} MB" if "memory_run" in result
+                                        else "done")
         print(f"{shown} ({result['wall_seconds']:.0f} s{', kept from before' if result.get('reused') else ''})",
               flush=True)
         if n % 6 == 0:

@@ -118,28 +118,86 @@ def _run(kind: str, seed: int, eps: float, acc: float) -> dict:
     return {"job": job, "result": result}
 
 
-def test_summary_takes_the_median_of_back_to_back_pair_ratios():
-    # Pairs (harness, reference) per seed: ratios 2.0, 3.0 and 2.5 -> median 2.5; the median of each
+def test_summary_takes_the_median_of_same_seed_ratios_against_every_contender():
+    # Pairs (harness, bf16 Trainer) per seed: ratios 2.0, 3.0 and 2.5 -> median 2.5; the median of each
     # contender's throughputs alone would give 30 / 12 = 2.5 here too, but not in general.
-    results = [_run("harness", 1, 20.0, 0.98), _run("reference", 1, 10.0, 0.97),
-               _run("reference", 2, 12.0, 0.96), _run("harness", 2, 36.0, 0.98),
-               _run("harness", 3, 30.0, 0.99), _run("reference", 3, 12.0, 0.98)]
-    report = summarise(results, matmul=[1e3], machine={}, settings={}, mode="test", seconds=1.0)
+    results = [_run("harness", 1, 20.0, 0.98), _run("trainer_bf16", 1, 10.0, 0.97),
+               _run("trainer_bf16", 2, 12.0, 0.96), _run("harness", 2, 36.0, 0.98),
+               _run("harness", 3, 30.0, 0.99), _run("trainer_bf16", 3, 12.0, 0.98),
+               _run("plain_bf16", 1, 20.0, 0.995), _run("plain_bf16", 2, 24.0, 0.995), _run("plain_bf16", 3, 25.0, 0.995)]
+    report = summarise(results, matmul=[1e3], machine={"bf16_matmul_flops_per_second": 2e3},
+                       settings={"train.bf16": True}, mode="test", seconds=1.0)
     row = report["training"][0]
-    assert row["throughput_ratios"] == [2.0, 3.0, 2.5] and row["throughput_ratio"] == 2.5
-    assert row["accuracy_gap_points"] == pytest.approx(100 * ((0.98 + 0.98 + 0.99) - (0.97 + 0.96 + 0.98)) / 3)
+    vs = row["versus"]["trainer_bf16"]
+    assert vs["throughput_ratios"] == [2.0, 3.0, 2.5] and vs["throughput_ratio"] == 2.5
+    assert vs["accuracy_gap_points"] == pytest.approx(100 * ((0.98 + 0.98 + 0.99) - (0.97 + 0.96 + 0.98)) / 3)
+    assert row["versus"]["plain_bf16"]["throughput_ratios"] == [1.0, 1.5, 1.2]
+    assert "trainer_fp32" not in row["versus"]  # a contender that did not run is left out, not invented
     # 1.5 epochs of 30 real tokens (real_tokens / sum(lengths)): 6*1000*(10+20) + 12*2*8*(100+400) = 276,000
-    # per pass, 414,000 in all, over 100 s, against a 1,000 FLOP/s matmul peak.
+    # per pass, 414,000 in all, over 100 s, against a 1,000 FLOP/s fp32 and a 2,000 FLOP/s bf16 matmul peak.
     assert row["harness"]["training_flops"] == pytest.approx(414_000)
     assert row["harness"]["matmul_fraction"] == pytest.approx(4.14)
+    assert row["harness"]["bf16_fraction"] == pytest.approx(2.07)
     assert row["harness"]["padding_efficiency"] == pytest.approx(0.75)
-    memory = next(t for t in report["targets"] if t["target"].startswith("peak memory"))
-    assert memory["value"] == 903.0 and memory["verdict"].startswith("met")
+    verdicts = {t["target"]: t["verdict"] for t in report["targets"]}
+    assert verdicts["training throughput, harness / Trainer, bf16 + length groups, minilm-l6 sms-spam"].startswith("met")
+    assert verdicts["training throughput, harness / plain loop, bf16, minilm-l6 sms-spam"] == \
+        "missed by 0.30x (1.20x < 1.50x)"
+    # 98.33 % against 99.50 %: 1.17 points lower
+    assert verdicts["accuracy, harness - plain loop, bf16 (points), minilm-l6 sms-spam"] == "missed by 0.17 (-1.17 < -1.00)"
+
+
+def test_whole_run_peaks_are_held_against_their_own_ceilings():
+    from bench.memory import MEMORY_RUNS
+
+    names = list(MEMORY_RUNS)
+    results = [{"job": {"kind": "memory", "id": f"memory-run-{i}", "memory_run": name},
+                "result": {"peak_rss_mb": peak, "method": "head", "batch_size": 8, "bf16": True, "accuracy": 0.9}}
+               for i, (name, peak) in enumerate(zip(names, (1400.0, 2600.0, 2400.0, 1200.0), strict=True))]
+    report = summarise(results, matmul=[1e3], machine={}, settings={}, mode="test", seconds=1.0)
+    verdicts = [t["verdict"] for t in report["targets"] if t["target"].startswith("peak memory (MB)")]
+    # the ceilings: 1,500 MB MiniLM defaults, 2,500 MB each SmolLM2 trained arm, 1,500 MB prompt scoring
+    assert verdicts == ["met (1400.00 <= 1500.00)", "missed by 100.00 (2600.00 > 2500.00)",
+                        "met (2400.00 <= 2500.00)", "met (1200.00 <= 1500.00)"]
+
+
+def test_memory_runs_are_the_bakeoff_arms_they_name(tmp_path: Path):
+    from bench.memory import MEMORY_RUNS, memory_config
+
+    kinds = {name: memory_config(name, tmp_path, {"name": "t", "train": "asset:sms-spam"}) for name in MEMORY_RUNS}
+    assert [(c.model.checkpoint, c.method.kind) for c in kinds.values()] == [
+        ("asset:minilm-l6", "head"), ("asset:smollm2-135m", "head"), ("asset:smollm2-135m", "next_token"),
+        ("asset:smollm2-135m", "prompt")]
+    assert all(c.output == str(tmp_path) and not c.sweep.arms for c in kinds.values())
+    assert kinds["SmolLM2-135M next_token, bake-off arm"].train.batch_size == 4  # the arm's own setting
+
+
+def test_plain_loop_groups_strictly_by_length_within_shuffled_pools():
+    from bench.plain import POOL_BATCHES, strict_length_batches
+
+    lengths = [(i * 37) % 101 for i in range(4 * POOL_BATCHES * 2 + 5)]
+    batches = strict_length_batches(lengths, 4, seed=3, epoch=0)
+    assert sorted(i for b in batches for i in b) == list(range(len(lengths)))  # every example once
+    assert all(sorted(lengths[i] for i in b) == [lengths[i] for i in b] for b in batches)  # each sorted run
+    assert batches != strict_length_batches(lengths, 4, seed=3, epoch=1)  # a new order every epoch
+    assert batches == strict_length_batches(lengths, 4, seed=3, epoch=0)  # and the same order again
+
+
+def test_contender_order_rotates_from_one_seed_to_the_next(tmp_path: Path):
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("benchmark_script", Path(__file__).parents[2] / "scripts" / "benchmark.py")
+    script = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(script)  # type: ignore[union-attr]
+    jobs = script.training_jobs({**script.QUICK, "seeds": (1, 2, 3)}, None, tmp_path)
+    firsts = [j["kind"] for j in jobs if j["model"] == "minilm-l6" and j["task_name"] == "sms-spam"][::5]
+    assert firsts == ["harness", "trainer_fp32", "trainer_bf16"]
+    assert {j["kind"] for j in jobs} == set(script.CONTENDERS)
 
 
 def test_a_variant_run_on_every_seed_gets_its_own_memory_speed_and_accuracy_targets():
-    base = [_run("harness", 1, 20.0, 0.98), _run("reference", 1, 10.0, 0.97),
-            _run("reference", 2, 12.0, 0.96), _run("harness", 2, 36.0, 0.98)]
+    base = [_run("harness", 1, 20.0, 0.98), _run("trainer_bf16", 1, 10.0, 0.97),
+            _run("trainer_bf16", 2, 12.0, 0.96), _run("harness", 2, 36.0, 0.98)]
     variant = []
     for seed, eps, acc, peak in ((1, 18.0, 0.96, 1400.0), (2, 22.0, 0.965, 1450.0)):
         item = _run("harness", seed, eps, acc)
@@ -151,9 +209,10 @@ def test_a_variant_run_on_every_seed_gets_its_own_memory_speed_and_accuracy_targ
     report = summarise(base + variant + [one_seed], matmul=[1e3], machine={}, settings={}, mode="test", seconds=1.0)
     found = {t["target"]: t for t in report["targets"] if t["target"].endswith("with setting X")}
     assert found["peak memory, MiniLM head training (MB), with setting X"]["value"] == 1450.0
-    # median of 18 and 22 = 20 ex/s against the reference's median of 10 and 12 = 11 ex/s
-    assert found["training throughput vs reference, MiniLM sms-spam, with setting X"]["value"] == pytest.approx(20 / 11)
-    gap = found["accuracy, harness - reference (points), minilm-l6 sms-spam, with setting X"]
+    # median of 18 and 22 = 20 ex/s against the bf16 Trainer's median of 10 and 12 = 11 ex/s
+    name = "training throughput, harness / Trainer, bf16 + length groups, minilm-l6 sms-spam, with setting X"
+    assert found[name]["value"] == pytest.approx(20 / 11)
+    gap = found["accuracy, harness - Trainer, bf16 + length groups (points), minilm-l6 sms-spam, with setting X"]
     assert gap["value"] == pytest.approx(100 * (0.9625 - 0.965)) and gap["verdict"].startswith("met")
     assert not any("choice Y" in t["target"] for t in report["targets"])  # one seed: memory table only
     assert [r["variant"] for r in report["memory"]] == ["setting X", "setting X", "choice Y"]

@@ -156,7 +156,10 @@ class TrainConfig:
     patience: int | None = _doc("early stopping after N evaluations without improvement; null = off", None)
     log_every: int = _doc("write a log.jsonl line every N optimiser steps", 10)
     threads: int | None = _doc("torch intra-op threads; null = physical cores of this machine", None)
-    bf16: bool = _doc("bf16 autocast on the CPU (measure first: not faster on every CPU)", False)
+    bf16: bool | Literal["auto"] = _doc(
+        "bf16 autocast: true, false, or auto = on where the CPU has bf16 instructions (AVX-512 BF16 or AMX) "
+        "and no GPU is used, off elsewhere", "auto"
+    )
     checkpoint_every: int = _doc("save a resumable checkpoint every N steps; 0 = at each evaluation", 0)
 
 

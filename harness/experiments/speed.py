@@ -47,6 +47,7 @@ from harness.methods.registry import Method
 from harness.runs import run as runner  # the module: execute_run looked up at call time
 from harness.runs.serving import LATENCY_BUDGET, LATENCY_ROWS, WARMUP_ROWS
 from harness.train.loop import resolve_threads
+from harness.train.precision import uses_bf16
 
 __all__ = ["STEPS", "Speed", "SpeedCache", "cpu_seconds", "family_key", "family_name", "machine_fingerprint",
            "measure_speed", "others_share", "speed_dir"]
@@ -117,7 +118,7 @@ def family_key(cfg: Config) -> str:
     m, t = cfg.method, cfg.train
     data = {"model": config_to_dict(cfg)["model"], "kind": m.kind, "freeze": m.freeze,
             "lora": None if m.lora is None else config_to_dict(cfg)["method"]["lora"],
-            "bf16": t.bf16, "batch_size": t.batch_size, "grad_accum": t.grad_accum, "eval_batch_size": cfg.eval.batch_size}
+            "bf16": uses_bf16(t), "batch_size": t.batch_size, "grad_accum": t.grad_accum, "eval_batch_size": cfg.eval.batch_size}
     return json.dumps(data, sort_keys=True)
 
 
@@ -130,7 +131,7 @@ def family_name(cfg: Config) -> str:
         parts.append(f"LoRA r={cfg.method.lora.r}")
     elif cfg.method.freeze != "none":
         parts.append(f"{cfg.method.freeze} frozen")
-    if cfg.train.bf16:
+    if uses_bf16(cfg.train):
         parts.append("bf16")
     parts.append(f"batch {cfg.train.batch_size}")
     return ", ".join(parts)

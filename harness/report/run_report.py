@@ -79,6 +79,14 @@ def _section(config: dict[str, Any], name: str) -> dict[str, Any]:
     return value if isinstance(value, dict) else {}
 
 
+def _precision(env: dict[str, Any]) -> str:
+    """train.bf16 as resolved on the machine that ran (older runs did not record it)."""
+    if "bf16" not in env:
+        return "not recorded"
+    cpu = {True: ", CPU has bf16 instructions", False: ", CPU without bf16 instructions"}.get(env.get("cpu_bf16"), "")
+    return ("bf16 autocast" if env["bf16"] else "fp32") + cpu
+
+
 def _decimals(value: Any, digits: int) -> str:
     return fmt(float(value), digits) if isinstance(value, (int, float)) and not isinstance(value, bool) else fmt(value)
 
@@ -259,6 +267,7 @@ def report_blocks(report: dict[str, Any]) -> list[Block]:
             ["scoring seconds", _decimals(cost.get("eval_seconds"), 1)],
             ["training examples per second", _decimals(cost.get("train_examples_per_second"), 1)],
             ["optimiser steps", cost.get("steps")], ["peak memory (MB)", _decimals(cost.get("peak_rss_mb"), 0)],
+            ["precision", _precision(report.get("environment") or {})],
             ["trainable parameters", fmt(trainable) + share], ["total parameters", total],
             *serving_rows(cost.get("serving") or {}),
         ]),

@@ -50,6 +50,7 @@ from harness.runs.twin import adopt_training, dev_twin, twin_cost
 from harness.train.checkpoints import Interrupted
 from harness.train.loop import set_threads, train
 from harness.train.memory import peak_rss_mb, reset_peak_rss
+from harness.train.precision import cpu_has_bf16, uses_bf16
 from harness.train.processes import is_main_process, predict_sharded, process_state, wait_for_everyone
 
 __all__ = ["encode_split", "execute_run", "peak_rss_mb"]
@@ -219,7 +220,8 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
         if main:
             atomic_write_text(folder / "config.yaml", dump_config(cfg))
             atomic_write_json(folder / "environment.json",
-                              {**environment_info(), "torch_threads": threads, "processes": processes})
+                              {**environment_info(), "torch_threads": threads, "processes": processes,
+                               "bf16": uses_bf16(cfg.train), "cpu_bf16": cpu_has_bf16()})
             atomic_write_json(folder / "data.json", {**data.fingerprint(), "audit": audit})
             for finding in audit["findings"]:
                 if shown_findings is None or finding not in shown_findings:

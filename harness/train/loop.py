@@ -28,6 +28,7 @@ from harness.methods.registry import Encoded, Method
 from harness.metrics.scores import METRICS, compute_metrics
 from harness.train import processes  # the module: looked up at call time (tests count the rows scored)
 from harness.train.batching import EpochBatches
+from harness.train.precision import uses_bf16
 from harness.train.checkpoints import Checkpoints, Interrupted, TrainState, interrupt_guard
 from harness.train.processes import any_process, average_gradients, is_main_process, local_process_count
 
@@ -143,11 +144,11 @@ def evaluate(method: Method, items: Sequence[Encoded], label_names: Sequence[str
 
 
 def make_accelerator(cfg: Config) -> Any:
-    """An Accelerator on the best available device, with bf16 autocast when train.bf16 is set."""
+    """An Accelerator on the best available device, with bf16 autocast when train.bf16 resolves to on."""
     from accelerate import Accelerator
     from accelerate.state import AcceleratorState
 
-    precision = "bf16" if cfg.train.bf16 else "no"
+    precision = "bf16" if uses_bf16(cfg.train) else "no"
     shared = AcceleratorState._shared_state
     if shared and shared.get("_mixed_precision") != precision:
         # accelerate keeps one process-wide state and refuses a new precision; a sweep in one process

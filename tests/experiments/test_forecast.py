@@ -16,6 +16,7 @@ import pytest
 from harness.config import Config, load_config
 from harness.data.task import load_task
 from harness.errors import HarnessError
+from harness.train.precision import uses_bf16
 from harness.experiments.forecast import Forecast, forecast_runs, parse_duration
 from harness.experiments.speed import Speed, SpeedCache, family_key
 from harness.experiments.work import (
@@ -165,7 +166,8 @@ def test_a_cached_speed_is_reused_and_another_machine_measures_again(tmp_path: P
     speeds = tmp_path / "speed"
     lines: list[str] = []
     first = forecast_runs([cfg], log=lines.append, speed_folder=speeds)[0]
-    assert _measuring(lines) == [f"measuring this machine's speed for toy:encoder head, batch 2 (once, cached in "
+    bf16 = ", bf16" if uses_bf16(cfg.train) else ""  # train.bf16 is auto: on where this CPU has bf16 instructions
+    assert _measuring(lines) == [f"measuring this machine's speed for toy:encoder head{bf16}, batch 2 (once, cached in "
                                  f"{SpeedCache(1, folder=speeds, log=print).path})"]
     assert first.basis.startswith("calibrated on this machine ") and first.total_seconds is not None
     assert first.total_seconds == first.train_seconds + first.score_seconds + first.overhead_seconds  # type: ignore[operator]

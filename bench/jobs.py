@@ -182,7 +182,7 @@ def run_trainer(job: dict[str, Any]) -> dict[str, Any]:
         shapes.append(tuple(batch["input_ids"].shape))  # type: ignore[arg-type]
         return batch
 
-    best = {"bf16": True, "train_sampling_strategy": "group_by_length", "save_strategy": "no"}
+    best: dict[str, Any] = {"bf16": True, "train_sampling_strategy": "group_by_length", "save_strategy": "no"}
     with tempfile.TemporaryDirectory(prefix="bench-ref-") as out:
         args = TrainingArguments(output_dir=out, use_cpu=True, num_train_epochs=cfg.train.epochs,
                                  per_device_train_batch_size=cfg.train.batch_size,

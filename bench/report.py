@@ -229,7 +229,7 @@ def render_markdown(report: dict[str, Any]) -> str:
             "call minus its dev scoring and checkpoint writes (`cost.train_dev_seconds`). Ratio = harness / contender, "
             "median over seeds of runs on the same seed and data, minutes apart. Peak MB = ru_maxrss of the "
             "contender's own process.", ""]
-    rows = []
+    rows: list[tuple[Any, ...]] = []
     for r in report["training"]:
         h = r["harness"]
         rows.append((r["model"], r["task"], f"{h['train_examples']} / {h['test_examples']}", len(r["seeds"]), "harness",

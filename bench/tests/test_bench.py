@@ -187,8 +187,9 @@ def test_contender_order_rotates_from_one_seed_to_the_next(tmp_path: Path):
     import importlib.util
 
     spec = importlib.util.spec_from_file_location("benchmark_script", Path(__file__).parents[2] / "scripts" / "benchmark.py")
+    assert spec is not None and spec.loader is not None
     script = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(script)  # type: ignore[union-attr]
+    spec.loader.exec_module(script)
     jobs = script.training_jobs({**script.QUICK, "seeds": (1, 2, 3)}, None, tmp_path)
     firsts = [j["kind"] for j in jobs if j["model"] == "minilm-l6" and j["task_name"] == "sms-spam"][::5]
     assert firsts == ["harness", "trainer_fp32", "trainer_bf16"]

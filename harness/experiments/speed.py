@@ -113,12 +113,17 @@ def machine_fingerprint(threads: int) -> dict[str, Any]:
             "torch": torch.__version__, "threads": threads}
 
 
+def _trains_in_bf16(cfg: Config) -> bool:
+    """train.bf16 as resolved here, for a method that trains (prompt scoring never runs under autocast)."""
+    return cfg.method.kind != "prompt" and uses_bf16(cfg.train)
+
+
 def family_key(cfg: Config) -> str:
     """The settings that change a run's speed, as one string (the cache key within a machine's file)."""
     m, t = cfg.method, cfg.train
     data = {"model": config_to_dict(cfg)["model"], "kind": m.kind, "freeze": m.freeze,
             "lora": None if m.lora is None else config_to_dict(cfg)["method"]["lora"],
-            "bf16": uses_bf16(t), "batch_size": t.batch_size, "grad_accum": t.grad_accum, "eval_batch_size": cfg.eval.batch_size}
+            "bf16": _trains_in_bf16(cfg), "batch_size": t.batch_size, "grad_accum": t.grad_accum, "eval_batch_size": cfg.eval.batch_size}
     return json.dumps(data, sort_keys=True)
 
 
@@ -131,7 +136,7 @@ def family_name(cfg: Config) -> str:
         parts.append(f"LoRA r={cfg.method.lora.r}")
     elif cfg.method.freeze != "none":
         parts.append(f"{cfg.method.freeze} frozen")
-    if uses_bf16(cfg.train):
+    if _trains_in_bf16(cfg):
         parts.append("bf16")
     parts.append(f"batch {cfg.train.batch_size}")
     return ", ".join(parts)

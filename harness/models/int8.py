@@ -32,6 +32,7 @@ from torch.ao.quantization import per_channel_dynamic_qconfig, quantize_dynamic
 from transformers.pytorch_utils import Conv1D
 
 from harness.errors import HarnessError
+from harness.train.precision import drop_autocast
 
 __all__ = ["QuantizedLinear", "int8_copy", "linear_weights", "quantized_engines", "state_bytes"]
 
@@ -84,21 +85,6 @@ def _as_linear(conv: Conv1D) -> nn.Linear:
         linear.weight.copy_(conv.weight.t())
         linear.bias.copy_(conv.bias)
     return linear
-
-
-def _plain_forward(root: nn.Module) -> int:
-    """Drop accelerate's mixed-precision wrapper from the copy's modules; returns how many had one.
-
-    Why: `accelerator.prepare` under train.bf16 replaces a model's `forward` by one that runs in bf16
-    autocast (and keeps the class's as `_original_forward`); the int8 kernels take float32 inputs.
-    """
-    found = 0
-    for module in root.modules():
-        if "_original_forward" in vars(module):
-            vars(module).pop("forward", None)  # the class's own forward again
-            del module._original_forward
-            found += 1
-    return found
 
 
 def _convert_conv1d(module: nn.Module) -> int:
@@ -158,7 +144,7 @@ def int8_copy(modules: Mapping[str, nn.Module]) -> tuple[dict[str, nn.Module], d
                            "supported_engines is empty); int8 cannot run here")
     copied: dict[str, nn.Module] = copy.deepcopy(dict(modules))
     merged = sum(_unwrap(m) for m in copied.values())
-    autocast = sum(_plain_forward(m) for m in copied.values())
+    autocast = sum(drop_autocast(m) for m in copied.values())
     converted = sum(_convert_conv1d(m) for m in copied.values())
     linear, total = linear_weights(copied)
     if linear == 0:

@@ -83,7 +83,8 @@ def _precision(env: dict[str, Any]) -> str:
     """train.bf16 as resolved on the machine that ran (older runs did not record it)."""
     if "bf16" not in env:
         return "not recorded"
-    cpu = {True: ", CPU has bf16 instructions", False: ", CPU without bf16 instructions"}.get(env.get("cpu_bf16"), "")
+    cpu_bf16 = env.get("cpu_bf16")
+    cpu = "" if cpu_bf16 is None else ", CPU has bf16 instructions" if cpu_bf16 else ", CPU without bf16 instructions"
     return ("bf16 autocast" if env["bf16"] else "fp32") + cpu
 
 

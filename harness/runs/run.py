@@ -26,6 +26,8 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
+import torch
+
 from harness.config import Config, config_folder, config_to_dict, dump_config, key_location
 from harness.data.audit import audit_data, token_counter
 from harness.data.task import Split, TaskData, load_task
@@ -50,7 +52,7 @@ from harness.runs.twin import adopt_training, dev_twin, twin_cost
 from harness.train.checkpoints import Interrupted
 from harness.train.loop import set_threads, train
 from harness.train.memory import peak_rss_mb, reset_peak_rss
-from harness.train.precision import cpu_has_bf16, uses_bf16
+from harness.train.precision import cpu_has_bf16, drop_autocast, uses_bf16
 from harness.train.processes import is_main_process, predict_sharded, process_state, wait_for_everyone
 
 __all__ = ["encode_split", "execute_run", "peak_rss_mb"]
@@ -232,6 +234,8 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
         if method.trains:
             result = train(method, train_items, dev_items, data.label_names, cfg, folder,
                            resume=resume or twin is not None, on_step=on_step, threads=threads)
+            for module in {id(v): v for v in vars(method).values() if isinstance(v, torch.nn.Module)}.values():
+                drop_autocast(module)  # scored, served and exported as the float32 model it is saved as
         scored, items = (data.dev, dev_items) if cfg.eval.score_on == "dev" else (data.test, test_items)
         started = time.perf_counter()
         probs = predict_sharded(lambda items: method.predict_proba(items, cfg.eval.batch_size), items)

@@ -100,7 +100,7 @@ def write_safetensors(fh: Any, tensors: dict[str, torch.Tensor]) -> None:
     fh.write(len(text).to_bytes(8, "little"))
     fh.write(text)
     for raw in parts:
-        fh.write(memoryview(raw.numpy()))
+        fh.write(memoryview(raw.numpy()))  # type: ignore[arg-type]  # (numpy arrays are buffers; the stubs lag)
 
 
 def _load_trainable(model: nn.Module, state: dict[str, torch.Tensor], path: Path) -> None:

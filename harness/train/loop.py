@@ -28,8 +28,8 @@ from harness.methods.registry import Encoded, Method
 from harness.metrics.scores import METRICS, compute_metrics
 from harness.train import processes  # the module: looked up at call time (tests count the rows scored)
 from harness.train.batching import EpochBatches
-from harness.train.precision import uses_bf16
 from harness.train.checkpoints import Checkpoints, Interrupted, TrainState, interrupt_guard
+from harness.train.precision import uses_bf16
 from harness.train.processes import any_process, average_gradients, is_main_process, local_process_count
 
 __all__ = ["TrainResult", "evaluate", "make_accelerator", "make_loader", "make_optimizer", "make_scheduler", "planned_steps",

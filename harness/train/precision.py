@@ -5,6 +5,11 @@ torch's own CPU probes report them) when no accelerator device is in use; everyw
 keeps the fp32 path exactly as with `bf16: false`. Without those instructions bf16 on a CPU is
 emulated and usually slower than fp32 (common practice); on a GPU the choice stays the user's.
 The resolved choice is written to the run's environment record and shown in its report.
+
+Only training (and the dev scoring inside it) runs under autocast. Once trained, the model is put
+back in float32 (`drop_autocast`) before the test split is scored, so the reported predictions,
+the serving figures and the exported model (float32 weights, loaded by `predict` or the library's
+own classes) are one and the same model.
 """
 
 from __future__ import annotations
@@ -13,7 +18,7 @@ from typing import Any
 
 import torch
 
-__all__ = ["cpu_has_bf16", "uses_bf16"]
+__all__ = ["cpu_has_bf16", "drop_autocast", "uses_bf16"]
 
 
 def cpu_has_bf16() -> bool:
@@ -32,3 +37,18 @@ def uses_bf16(train: Any) -> bool:
     if isinstance(train.bf16, bool):
         return train.bf16
     return cpu_has_bf16() and not _accelerator_present()
+
+
+def drop_autocast(root: torch.nn.Module) -> int:
+    """Drop accelerate's mixed-precision wrapper from `root`'s modules; returns how many had one.
+
+    `accelerator.prepare` under bf16 replaces a model's `forward` by one that runs in bf16 autocast
+    and keeps the class's own as `_original_forward`; without it the module runs in float32 again.
+    """
+    found = 0
+    for module in root.modules():
+        if "_original_forward" in vars(module):
+            vars(module).pop("forward", None)  # the class's own forward again
+            del module._original_forward
+            found += 1
+    return found

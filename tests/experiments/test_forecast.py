@@ -16,7 +16,6 @@ import pytest
 from harness.config import Config, load_config
 from harness.data.task import load_task
 from harness.errors import HarnessError
-from harness.train.precision import uses_bf16
 from harness.experiments.forecast import Forecast, forecast_runs, parse_duration
 from harness.experiments.speed import Speed, SpeedCache, family_key
 from harness.experiments.work import (
@@ -32,6 +31,7 @@ from harness.files import read_json
 from harness.methods.prompt import CONTENT_FREE
 from harness.methods.registry import build_method
 from harness.runs.run import execute_run
+from harness.train.precision import uses_bf16
 from tests.common import ferry_config
 
 TRAIN = ["Where is my bag", "The ferry to the island was late again this morning and I missed work",
@@ -254,8 +254,10 @@ def test_a_failed_measurement_leaves_the_run_unknown_with_the_reason(tmp_path: P
 
     monkeypatch.setattr(runner, "execute_run", refuse)  # looked up at call time by the measurement
     lines: list[str] = []
-    out = forecast_runs([_config(tmp_path)], log=lines.append, speed_folder=tmp_path / "speed")[0]
-    assert lines[-1] == "could not measure toy:encoder head, batch 2: data file vanished"
+    cfg = _config(tmp_path)
+    out = forecast_runs([cfg], log=lines.append, speed_folder=tmp_path / "speed")[0]
+    bf16 = ", bf16" if uses_bf16(cfg.train) else ""  # train.bf16 is auto: on where this CPU has bf16 instructions
+    assert lines[-1] == f"could not measure toy:encoder head{bf16}, batch 2: data file vanished"
     assert out.basis == "unknown: measuring failed (data file vanished)" and out.total_seconds is None
     assert not (tmp_path / "speed").exists()  # nothing cached: the next dry run measures again
 

@@ -26,6 +26,7 @@ from harness.files import file_sha256
 from harness.runs import run as runner
 from harness.runs.folders import read_status, run_id
 from harness.train.checkpoints import Interrupted
+from harness.train.precision import cpu_has_bf16
 from tests.common import FERRY, ferry_config
 
 _REAL_EXECUTE = runner.execute_run  # kept before any test wraps it
@@ -223,7 +224,8 @@ def test_dry_run_forecasts_every_run(tmp_path: Path, monkeypatch: pytest.MonkeyP
     assert out_lines[3].endswith("unknown: not measured on this machine, no finished run like it")
     assert sweep_command(path, [], dry_run=True) == 0  # measured by default
     out = capsys.readouterr().out
-    assert re.search(r"measuring this machine's speed for toy:encoder head, batch 8 \(once, cached in .+\)", out)
+    bf16 = ", bf16" if cpu_has_bf16() else ""  # train.bf16 is auto here: on where the CPU has bf16 instructions
+    assert re.search(rf"measuring this machine's speed for toy:encoder head{bf16}, batch 8 \(once, cached in .+\)", out)
     assert "measuring this machine's speed for toy:decoder prompt, batch 8" in out
     rows = [next(ln for ln in out.splitlines() if k in ln) for k in lines]
     assert all(re.search(r"from 1 finished runs, calibrated \d{4}-\d\d-\d\d$", ln) for ln in rows[1:3])

@@ -67,3 +67,18 @@ def test_the_accelerator_gets_the_resolved_precision(tmp_path: Path, monkeypatch
     assert make_accelerator(cfg).mixed_precision == "no"
     monkeypatch.setattr(precision, "cpu_has_bf16", lambda: True)
     assert make_accelerator(cfg).mixed_precision == "bf16"
+
+
+def test_a_bf16_trained_run_is_scored_as_the_float32_model_it_exports(tmp_path: Path) -> None:
+    # what the run reports must be what `predict` and the library class give for the saved model
+    import numpy as np
+
+    from harness.runs.predict import load_exported
+    from harness.runs.run import execute_run
+    from tests.runs.test_runner import make_cfg, probs_of, read_predictions
+
+    folder = execute_run(make_cfg(tmp_path, "toy:encoder", bf16=True, max_steps=6), log=lambda _: None)
+    assert (folder / "environment.json").read_text().count('"bf16": true') == 1
+    rows = read_predictions(folder)
+    exported = load_exported(folder)
+    np.testing.assert_allclose(exported.predict_proba([r["text"] for r in rows]), probs_of(rows), atol=1e-5)

@@ -147,7 +147,8 @@ def test_a_model_with_nothing_to_quantise_is_refused_before_the_run_starts(
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1
     assert "'eval.int8' in" in err and "line" in err and "method 'head' on toy:encoder" in err
-    folder = next((tmp_path / "runs" / "ferry").iterdir())
+    # the run folder, not the claim's `.<run-id>.lock` file beside it (listing order is the file system's)
+    (folder,) = [p for p in (tmp_path / "runs" / "ferry").iterdir() if not p.name.startswith(".")]
     assert read_status(folder)["state"] == "failed" and not (folder / "metrics.json").exists()
 
 

@@ -99,7 +99,7 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     from harness.methods.batches import PAD_MULTIPLE, batch_width
     from harness.models.backbones import resolve_source
     from harness.runs.run import execute_run
-    from harness.train.batching import epoch_batches
+    from harness.train.batching import epoch_batches, length_pieces
 
     prepare = _ablation(job)
     with tempfile.TemporaryDirectory(prefix="bench-run-") as tmp:
@@ -111,17 +111,19 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     source, _ = resolve_source(cfg.model.checkpoint)
     lengths = token_lengths(AutoTokenizer.from_pretrained(str(source)), data.train.texts, cfg.train.max_length)
     t = cfg.train
-    padded = sum(padded_tokens(lengths, epoch_batches(lengths, t.batch_size, mode=t.batching, pool_batches=t.pool_batches,
-                                                      seed=t.seed, epoch=e, labels=data.train.labels),
-                               width=lambda n: batch_width(n, t.max_length, int(job.get("pad_multiple", PAD_MULTIPLE))))
-                 for e in range(int(t.epochs)))
+    batches = [b for e in range(int(t.epochs)) for b in epoch_batches(
+        lengths, t.batch_size, mode=t.batching, pool_batches=t.pool_batches, seed=t.seed, epoch=e, labels=data.train.labels)]
+    pieces = [[b[i] for i in piece] for b in batches  # as the loop's PieceCollate cuts them (train.pieces)
+              for piece in length_pieces([lengths[i] for i in b], t.pieces)]
+    padded = padded_tokens(lengths, pieces,
+                           width=lambda n: batch_width(n, t.max_length, int(job.get("pad_multiple", PAD_MULTIPLE))))
     cost = metrics["cost"]
     seconds = cost["train_seconds"] - cost.get("train_dev_seconds", 0.0)  # training alone, as for every contender
     return {"contender": "harness", "examples_per_second": len(data.train) * int(t.epochs) / seconds,
             "train_seconds": seconds, "train_call_seconds": cost["train_seconds"],
             "train_dev_seconds": cost.get("train_dev_seconds"), "eval_seconds": cost["eval_seconds"],
             "accuracy": metrics["metrics"]["accuracy"], "macro_f1": metrics["metrics"]["macro_f1"],
-            "steps": cost["steps"], "train_examples": len(data.train), "test_examples": len(data.test),
+            "steps": cost["steps"], "passes": len(pieces), "train_examples": len(data.train), "test_examples": len(data.test),
             "lengths": lengths, "real_tokens": sum(lengths) * int(t.epochs), "padded_tokens": padded,
             "trainable_parameters": method.get("trainable_parameters"), "torch_threads": torch.get_num_threads(),
             "model": _loaded_facts(cfg)}

@@ -62,6 +62,7 @@ def check_values(cfg: Config, where: Callable[[str], str]) -> None:
          tr.max_grad_norm)
     need(tr.max_length >= 8, "train.max_length", "at least 8", tr.max_length)
     need(tr.pool_batches >= 1, "train.pool_batches", "at least 1", tr.pool_batches)
+    need(tr.pieces >= 1, "train.pieces", "at least 1", tr.pieces)
     need(tr.eval_every >= 0, "train.eval_every", "0 or more", tr.eval_every)
     need(tr.patience is None or tr.patience >= 1, "train.patience", "at least 1 or null", tr.patience)
     need(tr.log_every >= 1, "train.log_every", "at least 1", tr.log_every)

@@ -152,6 +152,10 @@ class TrainConfig:
         "random order, or length-grouped batches within shuffled pools (less padding)", "grouped"
     )
     pool_batches: int = _doc("grouped batching: batches per shuffled pool sorted by length", 16)
+    pieces: int = _doc(
+        "a batch runs its forward and backward passes in up to this many pieces of similar length, "
+        "summed into one gradient (less padding, same step); 1 = whole batches", 4
+    )
     eval_every: int = _doc("evaluate on dev every N optimiser steps; 0 = every epoch", 0)
     patience: int | None = _doc("early stopping after N evaluations without improvement; null = off", None)
     log_every: int = _doc("write a log.jsonl line every N optimiser steps", 10)

@@ -146,6 +146,11 @@ class HeadMethod:
         # float(): under bf16 autocast the logits are bf16; the loss is taken in fp32.
         return self.loss_fn.to(batch["labels"].device)(self.logits(batch).float(), batch["labels"])
 
+    def loss_weight(self, batch: dict[str, torch.Tensor]) -> float:
+        """What `loss` averages over: the rows, or their class weights (CrossEntropyLoss's weighted mean)."""
+        weight = self.loss_fn.weight
+        return float(len(batch["labels"]) if weight is None else weight[batch["labels"].to(weight.device)].sum())
+
     def predict_proba(self, items: Sequence[Encoded], batch_size: int) -> np.ndarray:
         """Softmax probabilities (n, num_labels) in the order given, in eval mode, without gradients."""
         if not items:

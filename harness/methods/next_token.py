@@ -188,6 +188,11 @@ class NextTokenMethod:
                          logits_to_keep=keep).logits  # (kept positions, vocab)
         return F.cross_entropy(logits.float(), targets[:, 1:][keep[:, :-1]])
 
+    def loss_weight(self, batch: dict[str, torch.Tensor]) -> float:
+        """What `loss` averages over: the label-word tokens predicted (targets other than IGNORE_INDEX)."""
+        targets = batch["target_ids"] if self.seq2seq else batch["target_ids"][:, 1:]
+        return float((targets != IGNORE_INDEX).sum())
+
     def label_scores(self, prompts: Sequence[Sequence[int]], batch_size: int) -> torch.Tensor:
         """(n, K) label scores (sum or mean log-probs, words averaged) of prompt token sequences."""
         order = sorted(range(len(prompts)), key=lambda i: len(prompts[i]))  # similar lengths pad less

@@ -27,13 +27,13 @@ from harness.files import atomic_write_text
 from harness.methods.registry import Encoded, Method
 from harness.metrics.scores import METRICS, compute_metrics
 from harness.train import processes  # the module: looked up at call time (tests count the rows scored)
-from harness.train.batching import EpochBatches
+from harness.train.batching import EpochBatches, PieceCollate
 from harness.train.checkpoints import Checkpoints, Interrupted, TrainState, interrupt_guard
 from harness.train.precision import uses_bf16
 from harness.train.processes import any_process, average_gradients, is_main_process, local_process_count
 
-__all__ = ["TrainResult", "evaluate", "make_accelerator", "make_loader", "make_optimizer", "make_scheduler", "planned_steps",
-           "release_large_blocks", "resolve_threads", "seed_everything", "set_threads", "train", "update_best"]
+__all__ = ["TrainResult", "backward_pieces", "evaluate", "make_accelerator", "make_loader", "make_optimizer",
+           "make_scheduler", "max_pieces", "planned_steps", "release_large_blocks", "resolve_threads", "seed_everything", "set_threads", "train", "update_best"]
 
 
 @dataclass(frozen=True)
@@ -194,8 +194,14 @@ class _Log:
         return mean
 
 
+def max_pieces(method: Method, cfg: Config) -> int:
+    """train.pieces for methods that say how their mean loss is weighted (`loss_weight`), else 1 (whole batches)."""
+    return cfg.train.pieces if callable(getattr(method, "loss_weight", None)) else 1
+
+
 def make_loader(method: Method, items: Sequence[Encoded], cfg: Config) -> tuple[EpochBatches, Any]:
-    """The batch sampler (epoch chosen by the loop) and a DataLoader that pads each batch dynamically."""
+    """The batch sampler (epoch chosen by the loop) and a DataLoader whose batches are lists of padded
+    pieces of similar length (`harness.train.batching.PieceCollate`; one piece with train.pieces: 1)."""
     from torch.utils.data import DataLoader
 
     t = cfg.train
@@ -204,9 +210,30 @@ def make_loader(method: Method, items: Sequence[Encoded], cfg: Config) -> tuple[
     dataset: Any = list(items)  # a list is a map-style dataset
     # Its own generator: every new DataLoader iterator draws a seed, which must not come from the global
     # stream (dropout's), or a resumed run (one extra iterator) would drift from an uninterrupted one.
-    loader = DataLoader(dataset, batch_sampler=sampler, collate_fn=method.collate,
+    loader = DataLoader(dataset, batch_sampler=sampler, collate_fn=PieceCollate(method.collate, max_pieces(method, cfg)),
                         generator=torch.Generator().manual_seed(t.seed))
     return sampler, loader
+
+
+def backward_pieces(method: Method, pieces: Sequence[dict[str, torch.Tensor]],
+                    backward: Callable[[torch.Tensor], None]) -> torch.Tensor:
+    """Backward through a batch given as pieces; returns the batch's mean loss (detached when cut).
+
+    Each piece's mean loss counts by its share of the batch's loss weight (`method.loss_weight`:
+    rows, class weights or target tokens), so the summed gradient is the whole batch's, padded once.
+    """
+    if len(pieces) == 1:
+        loss = method.loss(pieces[0])
+        backward(loss)
+        return loss
+    weights = [method.loss_weight(piece) for piece in pieces]  # type: ignore[attr-defined]
+    total = sum(weights)
+    parts = []
+    for piece, weight in zip(pieces, weights, strict=True):
+        loss = method.loss(piece) * (weight / total)
+        backward(loss)
+        parts.append(loss.detach())
+    return torch.stack(parts).sum()  # on the device: no host sync
 
 
 def update_best(state: TrainState, metrics: dict[str, Any], cfg: Config) -> bool:
@@ -273,8 +300,7 @@ def train(method: Method, train_items: Sequence[Encoded], dev_items: Sequence[En
             model.train()
             for batch in batches:
                 with accelerator.accumulate(model), accelerator.autocast():
-                    loss = method.loss(batch)
-                    accelerator.backward(loss)
+                    loss = backward_pieces(method, batch, accelerator.backward)
                     if accelerator.sync_gradients:
                         average_gradients(model)  # over processes; a no-op for one
                     if t.max_grad_norm is not None and accelerator.sync_gradients:
@@ -283,8 +309,9 @@ def train(method: Method, train_items: Sequence[Encoded], dev_items: Sequence[En
                     if accelerator.sync_gradients:
                         scheduler.step()
                     optimizer.zero_grad()
-                state.batch, seen = state.batch + 1, seen + len(batch["labels"])
-                log.add_batch(state, loss, len(batch["labels"]))
+                rows = sum(len(piece["labels"]) for piece in batch)
+                state.batch, seen = state.batch + 1, seen + rows
+                log.add_batch(state, loss, rows)
                 if not accelerator.sync_gradients:
                     continue
                 state.step += 1

@@ -72,6 +72,7 @@ BAD = [
     ("output: runs/", "output: runs/\nmetods: {}", ["metods", "line 15", "did you mean 'method'"]),
     ("max_length: 128", "max_length: 4", ["train.max_length", "line 13", "at least 8"]),
     ("seed: 13}", "seed: 1.5}", ["train.seed", "line 13", "expected int"]),
+    ("seed: 13}", "seed: 13, pieces: 0}", ["train.pieces", "line 13", "at least 1", "0"]),
     ("  text: text", "  text: [question, question]", ["task.text", "line 6", "two different columns"]),
     ("output: runs/", "output: runs/\neval: {primary: f1_macro}", ["eval.primary", "line 15", "did you mean 'macro_f1'"]),
     ("output: runs/", "output: runs/\neval: {ci: 2}", ["eval.ci", "line 15", "between 0.5 and 0.999"]),

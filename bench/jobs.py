@@ -99,7 +99,7 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     from harness.methods.batches import PAD_MULTIPLE, batch_width
     from harness.models.backbones import resolve_source
     from harness.runs.run import execute_run
-    from harness.train.batching import epoch_batches, length_pieces
+    from harness.train.batching import PIECE_STEP, epoch_batches, length_pieces
 
     prepare = _ablation(job)
     with tempfile.TemporaryDirectory(prefix="bench-run-") as tmp:
@@ -113,10 +113,12 @@ def run_harness(job: dict[str, Any]) -> dict[str, Any]:
     t = cfg.train
     batches = [b for e in range(int(t.epochs)) for b in epoch_batches(
         lengths, t.batch_size, mode=t.batching, pool_batches=t.pool_batches, seed=t.seed, epoch=e, labels=data.train.labels)]
+    def width(n: int) -> int:
+        return batch_width(n, t.max_length, int(job.get("pad_multiple", PAD_MULTIPLE)))
+
     pieces = [[b[i] for i in piece] for b in batches  # as the loop's PieceCollate cuts them (train.pieces)
-              for piece in length_pieces([lengths[i] for i in b], t.pieces)]
-    padded = padded_tokens(lengths, pieces,
-                           width=lambda n: batch_width(n, t.max_length, int(job.get("pad_multiple", PAD_MULTIPLE))))
+              for piece in length_pieces([lengths[i] for i in b], t.pieces, width=width, step=PIECE_STEP)]
+    padded = padded_tokens(lengths, pieces, width=width)
     cost = metrics["cost"]
     seconds = cost["train_seconds"] - cost.get("train_dev_seconds", 0.0)  # training alone, as for every contender
     return {"contender": "harness", "examples_per_second": len(data.train) * int(t.epochs) / seconds,

@@ -66,6 +66,10 @@ class Method(Protocol):
     def describe(self) -> dict[str, Any]:
         """Facts for the run folder (pooling, label-word token ids, parameter counts...)."""
 
+    # Optional, not part of the protocol's check: `loss_weight(batch) -> float`, the weight of the
+    # batch's mean loss (rows, summed class weights, target tokens). A method that has it trains in
+    # length pieces (train.pieces, harness.train.loop.backward_pieces); one without, in whole batches.
+
 
 MethodFactory = Callable[..., Method]
 METHODS: dict[str, MethodFactory] = {}

@@ -24,6 +24,7 @@ import torch
 
 from harness.config import Config
 from harness.files import atomic_write_text
+from harness.methods.batches import batch_width
 from harness.methods.registry import Encoded, Method
 from harness.metrics.scores import METRICS, compute_metrics
 from harness.train import processes  # the module: looked up at call time (tests count the rows scored)
@@ -210,8 +211,8 @@ def make_loader(method: Method, items: Sequence[Encoded], cfg: Config) -> tuple[
     dataset: Any = list(items)  # a list is a map-style dataset
     # Its own generator: every new DataLoader iterator draws a seed, which must not come from the global
     # stream (dropout's), or a resumed run (one extra iterator) would drift from an uninterrupted one.
-    loader = DataLoader(dataset, batch_sampler=sampler, collate_fn=PieceCollate(method.collate, max_pieces(method, cfg)),
-                        generator=torch.Generator().manual_seed(t.seed))
+    pieces = PieceCollate(method.collate, max_pieces(method, cfg), width=lambda n: batch_width(n, t.max_length))
+    loader = DataLoader(dataset, batch_sampler=sampler, collate_fn=pieces, generator=torch.Generator().manual_seed(t.seed))
     return sampler, loader
 
 

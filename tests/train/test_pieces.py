@@ -20,32 +20,39 @@ from harness.train.loop import backward_pieces, max_pieces, train
 from tests.common import ferry_dict
 
 
-def _cost(lengths: list[int], pieces: list[list[int]], overhead: int) -> int:
-    return sum(len(p) * max(lengths[i] for i in p) + overhead for p in pieces)
+def _cost(lengths: list[int], pieces: list[list[int]], overhead: int, width: Any = None) -> int:
+    return sum(len(p) * (width or (lambda n: n))(max(lengths[i] for i in p)) + overhead for p in pieces)
 
 
-def _brute_force(lengths: list[int], max_pieces: int, overhead: int) -> int:
-    """The cheapest cost over every cut of the sorted order into at most `max_pieces` contiguous runs."""
+def _brute_force(lengths: list[int], max_pieces: int, overhead: int, width: Any = None, step: int = 1) -> int:
+    """The cheapest cost over every cut of the sorted order into at most `max_pieces` contiguous runs,
+    every run but the last holding a multiple of `step` rows."""
     order = sorted(range(len(lengths)), key=lambda i: lengths[i])
     best = None
     for k in range(1, min(max_pieces, len(order)) + 1):
-        for cuts in itertools.combinations(range(1, len(order)), k - 1):
+        for cuts in itertools.combinations(range(step, len(order), step), k - 1):
             bounds = [0, *cuts, len(order)]
-            cost = _cost(lengths, [order[a:b] for a, b in itertools.pairwise(bounds)], overhead)
+            cost = _cost(lengths, [order[a:b] for a, b in itertools.pairwise(bounds)], overhead, width)
             best = cost if best is None else min(best, cost)
     assert best is not None
     return best
 
 
+def _round8(n: int) -> int:
+    return n if n <= 32 else -(-n // 8) * 8  # the shape of harness.methods.batches.batch_width
+
+
 def test_pieces_are_the_cheapest_cut_of_the_length_order_and_hold_every_row_once() -> None:
     rng = random.Random(0)
-    for _ in range(200):
+    for _ in range(300):
         lengths = [rng.randint(3, 120) for _ in range(rng.randint(1, 9))]
         k, overhead = rng.randint(1, 4), rng.choice([0, 20, 160])
-        pieces = length_pieces(lengths, k, overhead)
+        width, step = rng.choice([None, _round8]), rng.choice([1, 2, 4])
+        pieces = length_pieces(lengths, k, overhead, width=width, step=step)
         assert sorted(i for p in pieces for i in p) == list(range(len(lengths)))
         assert 1 <= len(pieces) <= k
-        assert _cost(lengths, pieces, overhead) == _brute_force(lengths, k, overhead)
+        assert all(len(p) % step == 0 for p in pieces[:-1])
+        assert _cost(lengths, pieces, overhead, width) == _brute_force(lengths, k, overhead, width, step)
 
 
 def test_a_batch_whose_length_tracks_the_label_is_cut_between_short_and_long() -> None:
@@ -100,7 +107,7 @@ def test_training_in_pieces_follows_training_on_whole_batches(tmp_path: Path, mo
             return out
 
     # No fixed cost per piece: the toys' rows are short, and the run must really train in pieces.
-    monkeypatch.setattr(loop, "PieceCollate", lambda collate, k: Counting(collate, k, overhead=0))
+    monkeypatch.setattr(loop, "PieceCollate", lambda collate, k, **kw: Counting(collate, k, **{**kw, "overhead": 0}))
     weights = []
     for pieces in (1, 4):
         data = ferry_dict(tmp_path / f"p{pieces}", rows=48, method={"kind": "head", "dropout": 0.0},

@@ -116,6 +116,8 @@ def main() -> int:
                         help="keep the results of jobs an interrupted run of the same command finished")
     parser.add_argument("--only", default=",".join(DEFAULT_GROUPS), metavar="GROUPS",
                         help=f"comma-separated job groups: {', '.join(GROUPS)} (default: all but memory-ablations)")
+    parser.add_argument("--seeds", type=int, default=None, metavar="N",
+                        help="train on the first N of the plan's seeds only (a shorter run; default: all)")
     parser.add_argument("--threads", type=int, default=None,
                         help="torch threads for every contender (default: harness = physical cores, "
                              "reference = torch's default)")
@@ -140,6 +142,10 @@ def main() -> int:
     if unknown or not groups:
         parser.error(f"--only: unknown group {', '.join(unknown) or '(none given)'}; choose from {', '.join(GROUPS)}")
     plan = QUICK if args.quick else FULL
+    if args.seeds is not None:
+        if args.seeds < 1:
+            parser.error(f"--seeds: {args.seeds} is not a positive number of seeds")
+        plan = {**plan, "seeds": plan["seeds"][:args.seeds]}
     out = Path(args.out or REPO / "bench_out").resolve()
     jobs_dir = out / "jobs"
     started = time.perf_counter()

@@ -238,3 +238,15 @@ def test_per_label_reference_scores_equal_unpadded_library_log_probs(toy_paths: 
                 expected = sum(logp[len(p) - 1 + k, tok].item() for k, tok in enumerate(s))
                 assert ours[i, j].item() == pytest.approx(expected, abs=1e-4)
     assert torch.allclose(ours, decoder_rank_scores(model, prompts, seqs, pad), atol=1e-4)
+
+
+def test_benchmark_refuses_a_seed_count_below_one_before_any_work(tmp_path: Path):
+    import subprocess
+    import sys
+
+    script = Path(__file__).resolve().parents[2] / "scripts" / "benchmark.py"
+    proc = subprocess.run([sys.executable, str(script), "--seeds", "0", "--out", str(tmp_path / "out")],
+                          capture_output=True, text=True, timeout=120, check=False)
+    assert proc.returncode == 2
+    assert "--seeds: 0 is not a positive number of seeds" in proc.stderr.strip().splitlines()[-1]
+    assert not (tmp_path / "out").exists()  # refused before anything was written

@@ -128,7 +128,7 @@ def machine_info() -> dict[str, Any]:
 def run_job(job: dict[str, Any], folder: Path, *, timeout: float = 3600.0, reuse: bool = False) -> dict[str, Any]:
     """Run one `bench.jobs` job in a fresh Python process and return its result dict.
 
-    A fresh process per contender keeps peak resident memory (ru_maxrss) apart and starts every
+    A fresh process per contender keeps peak resident memory (its own VmHWM) apart and starts every
     contender from the same cold state. A failed job returns {"error": ...} rather than raising,
     so one broken contender does not lose the rest of the benchmark. With `reuse`, a result left
     in `folder` by an earlier, interrupted benchmark for exactly this job is returned instead.

@@ -16,8 +16,10 @@ Throughput is counted alike for every contender: training examples seen / second
 evaluation and checkpoint writes excluded (the harness's dev scoring and checkpoints inside its
 training call are recorded as `cost.train_dev_seconds` and taken out).
 
-Every job reports its own peak resident memory (getrusage ru_maxrss): one process per job keeps
-the peaks of different contenders apart. Run by scripts/benchmark.py, never by tests.
+Every job reports its own peak resident memory (VmHWM of its own process, harness.train.memory):
+one process per job keeps the peaks of different contenders apart. Not getrusage's ru_maxrss: Linux
+keeps it across fork and exec, so a job would report at least its parent's size at the fork (the
+benchmark's own process, ~1.6 GB once it has prepared the checkpoints). Run by scripts/benchmark.py, never by tests.
 """
 
 from __future__ import annotations
@@ -248,15 +250,15 @@ CONTENDERS = ("harness", "trainer_fp32", "trainer_bf16", "plain_fp32", "plain_bf
 
 def main(argv: list[str]) -> int:
     """Run the job described in argv[0] (JSON) and write its result, with peak memory, to argv[1]."""
-    import resource
     import warnings
+
+    from harness.train.memory import peak_rss_mb
 
     os.environ["HF_HUB_OFFLINE"] = "1"  # no model hub at run time
     warnings.filterwarnings("ignore")  # library notices would only clutter the job log
     job = json.loads(Path(argv[0]).read_text(encoding="utf-8"))
     result = JOBS[job["kind"]](job)
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
-    result["peak_rss_mb"] = peak / 1024 if sys.platform != "darwin" else peak / 2**20
+    result["peak_rss_mb"] = peak_rss_mb()  # this process's own peak (VmHWM on Linux; see the module docstring)
     Path(argv[1]).write_text(json.dumps(result), encoding="utf-8")
     return 0
 

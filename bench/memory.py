@@ -1,8 +1,8 @@
 """Peak memory of whole runs as users launch them: each bake-off arm, and a MiniLM head at the defaults.
 
 A `memory` job runs one complete `execute_run` (training, dev scoring, checkpoints, test scoring,
-serving measurement, exports) in its own process, and scripts/benchmark.py reads the process's
-ru_maxrss afterwards. `arm` picks a run of configs/bakeoff.yaml's sweep (the arm's own settings,
+serving measurement, exports) in its own process, and bench.jobs reads the process's own peak
+(VmHWM) afterwards. `arm` picks a run of configs/bakeoff.yaml's sweep (the arm's own settings,
 seed 13, untuned); `defaults` is a MiniLM `head` run with nothing set beyond the task.
 Run by scripts/benchmark.py, never by tests.
 """

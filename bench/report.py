@@ -227,7 +227,7 @@ def render_markdown(report: dict[str, Any]) -> str:
             "Throughput = training examples seen / seconds of training alone, for every contender: the Trainer's "
             "`train()` (no evaluation, no checkpoint in it), the plain loop's own loop, and the harness's training "
             "call minus its dev scoring and checkpoint writes (`cost.train_dev_seconds`). Ratio = harness / contender, "
-            "median over seeds of runs on the same seed and data, minutes apart. Peak MB = ru_maxrss of the "
+            "median over seeds of runs on the same seed and data, minutes apart. Peak MB = peak resident memory (VmHWM) of the "
             "contender's own process.", ""]
     rows: list[tuple[Any, ...]] = []
     for r in report["training"]:

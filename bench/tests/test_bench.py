@@ -250,3 +250,24 @@ def test_benchmark_refuses_a_seed_count_below_one_before_any_work(tmp_path: Path
     assert proc.returncode == 2
     assert "--seeds: 0 is not a positive number of seeds" in proc.stderr.strip().splitlines()[-1]
     assert not (tmp_path / "out").exists()  # refused before anything was written
+
+
+def test_a_job_reports_its_own_peak_not_the_size_of_the_process_that_started_it(tmp_path: Path):
+    """Linux carries getrusage's ru_maxrss across fork and exec (getrusage(2)): a small job started
+    by a large parent would report the parent's size. The job's own peak (VmHWM) must not."""
+    import json
+    import subprocess
+    import sys
+
+    if not Path("/proc/self/status").exists():
+        pytest.skip("VmHWM is Linux's")
+    repo = Path(__file__).resolve().parents[2]
+    spec, out = tmp_path / "job.json", tmp_path / "result.json"
+    spec.write_text(json.dumps({"kind": "noop"}), encoding="utf-8")
+    child = ("import sys; import bench.jobs as j; j.JOBS['noop'] = lambda job: {}; "
+             f"sys.exit(j.main([{str(spec)!r}, {str(out)!r}]))")
+    parent = ("import subprocess, sys; big = bytearray(600 * 2**20); big[::4096] = b'x' * len(big[::4096]); "
+              f"sys.exit(subprocess.run([sys.executable, '-c', {child!r}], cwd={str(repo)!r}).returncode)")
+    subprocess.run([sys.executable, "-c", parent], cwd=repo, check=True, timeout=300)
+    peak = json.loads(out.read_text(encoding="utf-8"))["peak_rss_mb"]
+    assert 0 < peak < 500  # the job imports torch (~300 MB here); the parent held 600 MB more

@@ -204,6 +204,12 @@ def _table(header: Sequence[str], rows: Sequence[Sequence[Any]]) -> list[str]:
     return lines + [""]
 
 
+def _accuracy(summary: dict[str, Any]) -> str:
+    """Mean test accuracy in %, with its sd over seeds when there are several (one seed has no spread)."""
+    mean = f"{100 * summary['accuracy_mean']:.2f}"
+    return mean if len(summary["accuracy"]) < 2 else f"{mean} ± {100 * summary['accuracy_sd']:.2f}"
+
+
 def render_markdown(report: dict[str, Any]) -> str:
     """bench.md: machine, targets, training, utilisation, memory, scoring and ablation tables."""
     m = report["machine"]
@@ -234,14 +240,14 @@ def render_markdown(report: dict[str, Any]) -> str:
         h = r["harness"]
         rows.append((r["model"], r["task"], f"{h['train_examples']} / {h['test_examples']}", len(r["seeds"]), "harness",
                      f"{h['median_examples_per_second']:.1f}", "1.00x",
-                     f"{100 * h['accuracy_mean']:.2f} ± {100 * h['accuracy_sd']:.2f}", "-",
+                     _accuracy(h), "-",
                      f"{h['padding_efficiency']:.0%}", f"{h['peak_rss_mb']:.0f}"))
         for ref in REFERENCES:
             if ref not in r:
                 continue
             c, vs = r[ref], r["versus"][ref]
             rows.append(("", "", "", "", NAMES[ref], f"{c['median_examples_per_second']:.1f}",
-                         f"{vs['throughput_ratio']:.2f}x", f"{100 * c['accuracy_mean']:.2f} ± {100 * c['accuracy_sd']:.2f}",
+                         f"{vs['throughput_ratio']:.2f}x", _accuracy(c),
                          f"{vs['accuracy_gap_points']:+.2f}", f"{c['padding_efficiency']:.0%}", f"{c['peak_rss_mb']:.0f}"))
     out += _table(["model", "task", "train / test", "seeds", "contender", "train ex/s", "harness / contender",
                    "test acc %", "harness - contender (points)", "real / padded tokens", "peak MB"], rows)

@@ -147,6 +147,21 @@ def test_summary_takes_the_median_of_same_seed_ratios_against_every_contender():
     assert verdicts["accuracy, harness - plain loop, bf16 (points), minilm-l6 sms-spam"] == "missed by 0.17 (-1.17 < -1.00)"
 
 
+def test_training_table_shows_a_spread_of_accuracy_only_over_several_seeds():
+    from bench.report import render_markdown
+
+    def table(results: list[dict]) -> list[str]:
+        machine = {"cpu_model": "test CPU", "physical_cores": 2, "logical_cores": 2, "memory_gb": 8, "torch": "2",
+                   "torch_threads": 2, "load_average": [0, 0, 0], "bf16_matmul_flops_per_second": 2e3}
+        report = summarise(results, matmul=[1e3], machine=machine, settings={}, mode="test", seconds=1.0)
+        return [line for line in render_markdown(report).splitlines() if "| harness | " in line and "| 1.00x |" in line]
+
+    one = table([_run("harness", 1, 20.0, 0.98), _run("plain_bf16", 1, 20.0, 0.99)])
+    assert len(one) == 1 and "| 98.00 |" in one[0] and "±" not in one[0]  # one seed has no spread to show
+    three = table([_run("harness", s, 20.0, a) for s, a in ((1, 0.97), (2, 0.98), (3, 0.99))])
+    assert "| 98.00 ± 1.00 |" in three[0]  # sample sd of 97, 98, 99 (ddof 1)
+
+
 def test_whole_run_peaks_are_held_against_their_own_ceilings():
     from bench.memory import MEMORY_RUNS
 

@@ -21,7 +21,7 @@ import torch
 
 from harness.errors import HarnessError
 
-__all__ = ["Encoded", "Method", "METHODS", "register_method", "build_method", "load_builtin_methods"]
+__all__ = ["Encoded", "Method", "METHODS", "register_method", "build_method", "load_builtin_methods", "method_modules"]
 
 
 @dataclass(frozen=True)
@@ -69,6 +69,11 @@ class Method(Protocol):
     # Optional, not part of the protocol's check: `loss_weight(batch) -> float`, the weight of the
     # batch's mean loss (rows, summed class weights, target tokens). A method that has it trains in
     # length pieces (train.pieces, harness.train.loop.backward_pieces); one without, in whole batches.
+
+
+def method_modules(method: Method) -> dict[str, torch.nn.Module]:
+    """The method's modules, by attribute name (`model`, and e.g. next_token's `lm`, a part of it)."""
+    return {name: value for name, value in vars(method).items() if isinstance(value, torch.nn.Module)}
 
 
 MethodFactory = Callable[..., Method]

@@ -26,8 +26,6 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-import torch
-
 from harness.config import Config, config_folder, config_to_dict, dump_config, key_location
 from harness.data.audit import audit_data, token_counter
 from harness.data.task import Split, TaskData, load_task
@@ -41,7 +39,7 @@ from harness.files import (
     remove_stale_temporaries,
 )
 from harness.methods.batches import count_parameters
-from harness.methods.registry import Encoded, Method, build_method
+from harness.methods.registry import Encoded, Method, build_method, method_modules
 from harness.metrics.scores import compute_metrics
 from harness.models.backbones import position_limit
 from harness.report.run_report import write_run_report
@@ -234,7 +232,7 @@ def _execute_claimed(cfg: Config, folder: Path, *, resume: bool, overwrite: bool
         if method.trains:
             result = train(method, train_items, dev_items, data.label_names, cfg, folder,
                            resume=resume or twin is not None, on_step=on_step, threads=threads)
-            for module in {id(v): v for v in vars(method).values() if isinstance(v, torch.nn.Module)}.values():
+            for module in {id(m): m for m in method_modules(method).values()}.values():
                 drop_autocast(module)  # scored, served and exported as the float32 model it is saved as
         scored, items = (data.dev, dev_items) if cfg.eval.score_on == "dev" else (data.test, test_items)
         started = time.perf_counter()

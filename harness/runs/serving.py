@@ -25,11 +25,10 @@ from typing import Any
 
 import numpy as np
 import torch
-from torch import nn
 
 from harness.config import Config
 from harness.errors import SettingError
-from harness.methods.registry import Encoded, Method
+from harness.methods.registry import Encoded, Method, method_modules
 from harness.metrics.scores import compute_metrics
 from harness.models.int8 import int8_copy, linear_weights
 
@@ -85,25 +84,20 @@ def measure_serving(method: Method, items: Sequence[Encoded], *, batch_size: int
     }
 
 
-def _modules(method: Method) -> dict[str, nn.Module]:
-    """The method's modules, by attribute name (`model`, and e.g. next_token's `lm`, a part of it)."""
-    return {name: value for name, value in vars(method).items() if isinstance(value, nn.Module)}
-
-
 def check_int8(method: Method, cfg: Config) -> None:
     """Before anything is written: refuse `eval.int8` for a model dynamic quantisation would not change.
 
     (A torch build without a quantised engine is refused at config load, harness.config.checks.)
     """
     where = f"method {cfg.method.kind!r} on {cfg.model.checkpoint}"
-    if linear_weights(_modules(method))[0] == 0:
+    if linear_weights(method_modules(method))[0] == 0:
         raise SettingError("eval.int8", f"{where}: the model has no nn.Linear or Conv1D layer, so dynamic int8 "
                            "quantisation would change nothing; set eval.int8: false")
 
 
 def int8_method(method: Method) -> tuple[Method, dict[str, Any]]:
     """A copy of `method` that scores with the int8 copy of its model (the method itself is untouched)."""
-    copies, facts = int8_copy(_modules(method))
+    copies, facts = int8_copy(method_modules(method))
     clone = copy.copy(method)  # shares tokenizer, labels and settings; its modules are replaced below
     vars(clone).update(copies)
     return clone, facts
